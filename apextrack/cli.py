@@ -1,0 +1,150 @@
+"""The ``apextrack`` command line: a thin shell over the library.
+
+Each sub-command is declared by one ``_add_<name>`` function that builds its parser and points it
+at a small runner; the runners only parse arguments, call library functions and print. User
+errors (:class:`~apextrack.errors.ApextrackError`) are printed as one line and exit with code 2;
+anything else is an internal error (exit code 1; ``--debug`` shows the traceback).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from . import __version__
+from .errors import ApextrackError, SettingsError
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with usage errors in the project's one-line format (exit code 2)."""
+
+    def error(self, message):  # noqa: D401
+        self.exit(2, f"apextrack: error: {message} — see '{self.prog} --help'\n")
+
+
+def _float_pair(text: str):
+    try:
+        x, y = (float(v) for v in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected X,Y in µm, got {text!r}") from None
+    return (x, y)
+
+
+# ----------------------------------------------------------------------------------------------
+# analyse
+# ----------------------------------------------------------------------------------------------
+def _add_analyse(sub):
+    p = sub.add_parser("analyse", aliases=["analyze"], help="analyse one stack (default: the bundled demo)",
+                       description="Find, track and order the primordia of one time-lapse stack and "
+                                   "measure its phyllotaxis; write the tables into --out.")
+    p.add_argument("stack", nargs="?", help="TIFF file, folder of timepoint TIFFs or .zarr (default: demo stack)")
+    p.add_argument("--out", "-o", required=True, help="results folder")
+    p.add_argument("--channel", help="reporter channel: name or 0-based index")
+    p.add_argument("--pixel-size", type=float, dest="pixel_size_um", metavar="UM", help="x/y pixel size in µm")
+    p.add_argument("--z-step", type=float, dest="z_step_um", metavar="UM", help="z step in µm")
+    p.add_argument("--interval", type=float, dest="interval_h", metavar="HOURS", help="time between frames in hours")
+    p.add_argument("--time-axis", dest="time_axis", metavar="AXIS", help="axis to use as time when the file does not say")
+    p.add_argument("--centre", "--center", type=_float_pair, dest="centre_um", metavar="X,Y",
+                   help="apex centre in µm (instead of fitting it)")
+    p.add_argument("--min-snr", type=float, dest="min_snr", help="minimum signal-to-noise ratio of a detection")
+    p.add_argument("--settings", dest="settings_file", metavar="FILE.toml", help="settings file")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    p.add_argument("--quiet", "-q", action="store_true", help="no progress bars")
+    p.set_defaults(func=_run_analyse)
+
+
+def _run_analyse(args) -> int:
+    from .pipeline import analyse
+
+    overrides = {k: getattr(args, k) for k in ("channel", "pixel_size_um", "z_step_um", "interval_h",
+                                               "time_axis", "centre_um", "min_snr")}
+    if args.stack is None and not args.quiet:
+        print("apextrack: no stack given: analysing the bundled demo stack", file=sys.stderr)
+    res = analyse(args.stack, out=args.out, overwrite=args.overwrite, progress=not args.quiet,
+                  settings_file=args.settings_file, **overrides)
+    s = res.summary
+
+    def fmt(v, unit="", nd=1):
+        return "n/a" if v is None else f"{v:.{nd}f}{unit}"
+
+    print(f"{res.summary['stack']}: {s['n_primordia']} primordia, {s['n_tracks']} tracks, "
+          f"{s['n_detections']} detections in {s['n_frames']} frames")
+    print(f"  chirality {s.get('chirality')}, divergence {fmt(s.get('divergence_mean_deg'), '°')} "
+          f"± {fmt(s.get('divergence_sd_deg'), '°')}, plastochron {fmt(s.get('plastochron_h'), ' h')}, "
+          f"plastochron ratio {fmt(s.get('plastochron_ratio'), '', 3)}")
+    print(f"  results in {res.out_dir}")
+    return 0
+
+
+# ----------------------------------------------------------------------------------------------
+# settings
+# ----------------------------------------------------------------------------------------------
+def _add_settings(sub):
+    p = sub.add_parser("settings", help="write or check a settings file",
+                       description="Write the default settings (commented, with units) or check a file.")
+    g = p.add_mutually_exclusive_group(required=True)
+    g.add_argument("--write", metavar="FILE.toml", help="write the defaults to FILE.toml")
+    g.add_argument("--check", metavar="FILE.toml", help="read FILE.toml and report problems")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing file")
+    p.set_defaults(func=_run_settings)
+
+
+def _run_settings(args) -> int:
+    from . import settings as settings_mod
+
+    if args.write:
+        path = Path(args.write)
+        if path.exists() and not args.overwrite:
+            raise SettingsError("file exists", path, "use --overwrite or another name")
+        settings_mod.save(settings_mod.Settings(), path)
+        print(f"default settings written to {path}")
+    else:
+        settings_mod.load(args.check)
+        print(f"{args.check}: settings are valid")
+    return 0
+
+
+#: Sub-command builders, in the order they are listed by --help.
+COMMANDS = [_add_analyse, _add_settings]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="apextrack",
+                     description="Track primordia on time-lapse stacks of shoot apices and measure "
+                                 "their phyllotaxis.")
+    parser.add_argument("--version", action="version", version=f"apextrack {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for add in COMMANDS:
+        add(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except ApextrackError as exc:
+        if args.debug:
+            raise
+        print(f"apextrack: error: {exc.one_line()}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("apextrack: interrupted; no results were written", file=sys.stderr)
+        return 130
+    except Exception as exc:  # internal error
+        if args.debug:
+            raise
+        print(f"apextrack: internal error: {type(exc).__name__}: {exc} — run with --debug and report it",
+              file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

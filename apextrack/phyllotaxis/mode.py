@@ -1,0 +1,159 @@
+"""Pattern mode of a sequence of divergence angles: spiral, distichous, decussate, whorled or
+multijugate, with the evidence for it.
+
+Every non-spiral mode is a sequence of nodes of k organs (k = 1 distichous, k = 2 decussate or
+bijugate, k ≥ 3 whorled or multijugate). Within a node successive organs are a multiple of
+360/k apart; from the last organ of a node to the first of the next the angle is β modulo 360/k,
+where β is the rotation between successive nodes: β = 180/k for alternating whorls (distichous
+180°, decussate 90°, trimerous whorls 60°; common practice, no source) and β ≈ golden/k for
+multijugate spirals (bijugate 68.75°). The node boundaries come from co-initiation flags when
+they are given, otherwise every phase is tried. A spiral is one organ per node with a constant
+angle. The mode with most angles within ``tolerance`` of their prediction wins, but a more complex
+mode (more organs per node) must fit at least max(1, 10 %) more angles than a simpler one.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .. import circular as circ
+
+__all__ = ["classify_mode", "nodes_from_co_initiation"]
+
+PHI = (1.0 + math.sqrt(5.0)) / 2.0
+GOLDEN = 360.0 * (2.0 - PHI)
+
+
+def nodes_from_co_initiation(co_initiated_pairs) -> list[int]:
+    """Node id of each organ from per-angle flags "organs i and i+1 were initiated together"."""
+    flags = np.asarray(co_initiated_pairs, dtype=bool)
+    node = [0]
+    for f in flags:
+        node.append(node[-1] if f else node[-1] + 1)
+    return node
+
+
+def _fit_whorl(a: np.ndarray, within: np.ndarray, k: int, tol: float):
+    """Count angles that fit a k-node pattern with ``within`` marking within-node angles."""
+    step = 360.0 / k
+    n_fit = 0
+    res = np.full(a.size, np.nan)
+    # within-node: nearest non-zero multiple of 360/k
+    if within.any():
+        aw = a[within]
+        mult = np.clip(np.round(aw / step), 1, k - 1) if k > 1 else np.ones_like(aw)
+        r = circ.wrap180(aw - mult * step) if k > 1 else np.full(aw.size, 180.0)
+        res[within] = r
+    between = ~within
+    beta = math.nan
+    if between.any():
+        ab = a[between]
+        # rotation between nodes, modulo 360/k: circular mean of k·angle
+        mk = circ.circ_mean(circ.wrap360(ab * k))
+        beta = (mk / k) if not math.isnan(mk) else float(ab[0] % step)
+        r = circ.wrap180((ab - beta) * k) / k
+        res[between] = r
+    n_fit = int(np.sum(np.abs(res) <= tol))
+    return n_fit, beta, res
+
+
+def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
+                  max_k: int = 6) -> dict:
+    """Classify the pattern mode of divergence angles (generative direction, [0, 360)).
+
+    Parameters
+    ----------
+    angles_deg : array_like
+        Successive divergence angles in birth order.
+    co_initiated_pairs : array_like of bool, optional
+        Per angle: the two organs were initiated together (same node).
+    tolerance : float
+        Largest deviation (deg) of an angle from the mode's prediction that counts as fitting.
+    max_k : int
+        Largest number of organs per node tried.
+
+    Returns
+    -------
+    dict
+        ``mode`` ("spiral", "distichous", "decussate", "whorled", "multijugate" or None),
+        ``organs_per_node``, ``node_rotation_deg`` (β; the divergence for a spiral),
+        ``evidence`` (n_fit, n_angles, fraction, tolerance_deg, and the fit of every candidate),
+        ``reason`` (why no mode, else None).
+
+    Examples
+    --------
+    >>> classify_mode([180.0, 181.0, 179.0, 180.5])["mode"]
+    'distichous'
+    """
+    a = np.asarray(angles_deg, dtype=float)
+    a = a[np.isfinite(a)]
+    if a.size < 3:
+        return {"mode": None, "organs_per_node": None, "node_rotation_deg": None,
+                "evidence": {"n_angles": int(a.size), "tolerance_deg": tolerance},
+                "reason": f"pattern mode needs at least 3 divergence angles; {a.size} available"}
+    a = circ.wrap360(a)
+    candidates = []
+    # spiral: one organ per node, constant angle
+    m = circ.circ_mean(a)
+    res = circ.wrap180(a - m) if not math.isnan(m) else np.full(a.size, 180.0)
+    candidates.append({"k": 1, "kind": "spiral", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
+                       "beta": m, "phase": None})
+    # distichous: spiral with 180°
+    res = circ.wrap180(a - 180.0)
+    candidates.append({"k": 1, "kind": "distichous", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
+                       "beta": 180.0, "phase": None})
+    co = None if co_initiated_pairs is None else np.asarray(co_initiated_pairs, dtype=bool)
+    if co is not None and co.size != a.size:
+        co = None
+    idx = np.arange(a.size)
+    for k in range(2, max_k + 1):
+        if a.size < k:
+            break
+        trials = []
+        for ph in range(k):
+            # organ i sits at position (i + ph) % k in its node; angle i is within-node unless
+            # organ i+1 starts a node
+            within = ((idx + 1 + ph) % k) != 0
+            trials.append((within, ph))
+        if co is not None and co.any():
+            trials.append((co, "co_initiation"))
+        best = None
+        for within, ph in trials:
+            n_fit, beta, _ = _fit_whorl(a, within, k, tolerance)
+            if best is None or n_fit > best["n_fit"]:
+                best = {"k": k, "kind": "node", "n_fit": n_fit, "beta": beta, "phase": ph}
+        candidates.append(best)
+    # choose: candidates in order of complexity (distichous, spiral, 2, 3, ... organs per node);
+    # a more complex mode must fit clearly more angles than the simpler winner so far
+    margin = max(1, int(math.ceil(0.1 * a.size)))
+    ordered = [candidates[1], candidates[0]] + candidates[2:]
+    winner = ordered[0]
+    for c in ordered[1:]:
+        need = 1 if (winner["kind"] == "distichous" and c["kind"] == "spiral") else margin
+        if c["n_fit"] >= winner["n_fit"] + need:
+            winner = c
+    k = winner["k"]
+    beta = winner["beta"]
+    if winner["kind"] == "spiral":
+        mode = "distichous" if abs(circ.wrap180(beta - 180.0)) <= tolerance else "spiral"
+    elif winner["kind"] == "distichous":
+        mode = "distichous"
+    else:
+        step = 360.0 / k
+        bmod = beta % step if not math.isnan(beta) else math.nan
+        alternating = abs(circ.wrap180((bmod - 180.0 / k) * k) / k) <= tolerance / k \
+            if not math.isnan(bmod) else False
+        if alternating:
+            mode = "decussate" if k == 2 else "whorled"
+        else:
+            mode = "multijugate" if k >= 2 else "spiral"
+    ev = {"n_fit": int(winner["n_fit"]), "n_angles": int(a.size),
+          "fraction": float(winner["n_fit"] / a.size), "tolerance_deg": float(tolerance),
+          "candidates": [{"organs_per_node": int(c["k"]), "kind": c["kind"], "n_fit": int(c["n_fit"]),
+                          "node_rotation_deg": None if c["beta"] is None or (isinstance(c["beta"], float) and math.isnan(c["beta"])) else float(c["beta"]),
+                          "phase": c["phase"]} for c in candidates]}
+    return {"mode": mode, "organs_per_node": int(k),
+            "node_rotation_deg": None if beta is None or math.isnan(beta) else float(beta),
+            "evidence": ev, "reason": None}

@@ -1,0 +1,340 @@
+"""One stack end to end: read → project → centre → detect → link → birth order → phyllotaxis →
+write. Every stage is a library function; this module only strings them together, times them
+and writes the results folder atomically.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import platform
+import shutil
+import sys
+import time
+import warnings
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .apex import centre_from_view
+from .birth import order_primordia
+from .detect import detect_blobs, detections_to_um, scales_px
+from .errors import AnalysisError, OutputError
+from .link import add_polar, link_detections
+from .projection import top_view
+from .settings import Settings, from_dict
+from .stack import Stack, StackWarning, read_stack
+from .tables import TABLE_FILES, sha256_file, write_json, write_table
+
+#: Files every results folder holds.
+RESULT_FILES = ["detections.csv", "tracks.csv", "primordia.csv", "divergence.csv", "summary.json", "run.json"]
+
+
+@dataclass
+class AnalysisResult:
+    """Everything one analysis produced."""
+
+    detections: pd.DataFrame
+    tracks: pd.DataFrame
+    primordia: pd.DataFrame
+    divergence: pd.DataFrame
+    centres: pd.DataFrame
+    summary: dict
+    run: dict
+    settings: Settings
+    parastichies: pd.DataFrame = field(default_factory=pd.DataFrame)
+    out_dir: Path | None = None
+    extra_tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+
+    def tables(self) -> dict[str, pd.DataFrame]:
+        """The tables by name (as written to ``<name>.csv``)."""
+        t = {"detections": self.detections, "tracks": self.tracks, "primordia": self.primordia,
+             "divergence": self.divergence, "centres": self.centres}
+        if not self.parastichies.empty:
+            t["parastichies"] = self.parastichies
+        t.update(self.extra_tables)
+        return t
+
+
+def demo_stack_path(name: str = "spiral") -> Path:
+    """Path of a bundled demo stack."""
+    from .model import demo_stack_path as _demo
+
+    return Path(_demo(name))
+
+
+def _progress(iterable, total: int, desc: str, enabled: bool):
+    if not enabled:
+        return iterable
+    from tqdm.auto import tqdm
+
+    return tqdm(iterable, total=total, desc=desc, unit="frame", file=sys.stderr, leave=False,
+                dynamic_ncols=True)
+
+
+def resolve_settings(settings: Settings | dict | None = None, settings_file=None, **overrides) -> Settings:
+    """Defaults ← settings file ← ``settings`` ← keyword overrides (``None`` overrides are ignored)."""
+    from . import settings as settings_mod
+
+    s = Settings()
+    if settings_file is not None:
+        s = settings_mod.load(settings_file, base=s)
+    if isinstance(settings, Settings):
+        s = settings
+    elif isinstance(settings, dict):
+        s = from_dict(settings, base=s)
+    overrides = {k: v for k, v in overrides.items() if v is not None}
+    if overrides:
+        s = from_dict(overrides, source="arguments", base=s)
+    return s
+
+
+def check_output_dir(out: Path, overwrite: bool) -> None:
+    """Refuse an existing non-empty folder unless ``overwrite``; check the parent is writable."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise OutputError("exists and is not a folder", out, "give a folder path for the results")
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise OutputError("results folder exists and is not empty", out, "use --overwrite or another --out")
+    parent = out.parent if not out.exists() else out
+    probe = parent
+    while not probe.exists():
+        probe = probe.parent
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputError("folder is not writable", probe, "choose another output folder")
+
+
+class _Staging:
+    """A hidden sibling folder that receives every output and replaces ``out`` when complete."""
+
+    def __init__(self, out: Path):
+        self.out = Path(out)
+        self.out.parent.mkdir(parents=True, exist_ok=True)
+        self.path = self.out.parent / f".{self.out.name}.partial-{os.getpid()}-{time.time_ns()}"
+        try:
+            self.path.mkdir()
+        except OSError as exc:
+            raise OutputError(f"cannot create the results folder ({exc.strerror})", self.out.parent,
+                              "choose another output folder") from None
+
+    def commit(self) -> None:
+        old = None
+        if self.out.exists():
+            if self.out.is_dir() and not any(self.out.iterdir()):
+                self.out.rmdir()
+            else:
+                old = self.out.parent / f".{self.out.name}.old-{os.getpid()}-{time.time_ns()}"
+                os.replace(self.out, old)
+        os.replace(self.path, self.out)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+
+    def abort(self) -> None:
+        shutil.rmtree(self.path, ignore_errors=True)
+
+
+def _input_checksums(stack: Stack) -> dict[str, str]:
+    if stack.path is None:
+        return {}
+    p = Path(stack.path)
+    if p.is_file():
+        return {p.name: sha256_file(p)}
+    files = sorted(q for q in p.rglob("*") if q.is_file())
+    return {str(q.relative_to(p)): sha256_file(q) for q in files}
+
+
+def image_stage(stack: Stack, s: Settings, progress: bool = True,
+                on_frame: Callable[[int, np.ndarray], None] | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Project, locate the apex and detect primordia frame by frame (streaming).
+
+    Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame
+    (e.g. to write the top views) so that no more than one frame is held in memory.
+    """
+    px = stack.pixel_size_um[0]
+    sigmas = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, px, s.n_scales)
+    det_parts, centre_rows = [], []
+    times = stack.times_h()
+    for t in _progress(range(stack.n_frames), stack.n_frames, "frames", progress):
+        vol = stack.frame(t, s.channel)
+        view = top_view(vol, s.projection)
+        if on_frame is not None:
+            on_frame(t, view)
+        if s.centre_um is not None:
+            cx_um, cy_um, how = float(s.centre_um[0]), float(s.centre_um[1]), "user"
+        else:
+            cx, cy = centre_from_view(view)
+            cx_um, cy_um, how = cx * px, cy * px, "dome"
+        centre_rows.append((t, float(times[t]), cx_um, cy_um, how))
+        blobs = detect_blobs(view, sigmas, min_snr=s.min_snr)
+        det_parts.append(detections_to_um(blobs, t, float(times[t]), px))
+    centres = pd.DataFrame(centre_rows, columns=["frame", "time_h", "x_um", "y_um", "method"])
+    detections = pd.concat(det_parts, ignore_index=True) if det_parts else pd.DataFrame()
+    ny, nx = stack.shape_yx
+    if s.centre_um is not None:
+        cx, cy = s.centre_um
+        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
+            from .errors import SettingsError
+
+            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
+                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
+                                "give --centre X,Y in µm inside the image")
+    detections.insert(0, "detection_id", np.arange(len(detections), dtype=np.int64))
+    return detections, centres
+
+
+def analyse(source=None, out: str | Path | None = None, settings: Settings | dict | None = None, *,
+            overwrite: bool = False, progress: bool = True, settings_file=None, write_report: bool | None = None,
+            **overrides) -> AnalysisResult:
+    """Analyse one time-lapse stack end to end.
+
+    Parameters
+    ----------
+    source : path, array or Stack, optional
+        The stack (any format :func:`apextrack.stack.read_stack` reads). ``None``: the bundled
+        demo stack.
+    out : path, optional
+        Results folder. Written atomically: it appears complete or not at all; an existing
+        non-empty folder is replaced only with ``overwrite=True``.
+    settings : Settings or dict, optional
+        Parameters (see :mod:`apextrack.settings`); keyword arguments override single values,
+        e.g. ``analyse(path, pixel_size_um=0.5)``.
+    progress : bool
+        Show progress bars on stderr.
+
+    Returns
+    -------
+    AnalysisResult
+        The tables (detections, tracks, primordia, divergence, centres), summary and run record.
+    """
+    t_start = time.time()
+    started = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    s = resolve_settings(settings, settings_file, **overrides)
+    timings: dict[str, float] = {}
+
+    def lap(name, t0):
+        timings[name] = round(time.perf_counter() - t0, 4)
+
+    if out is not None:
+        out = Path(out)
+        check_output_dir(out, overwrite)
+    if source is None:
+        source = demo_stack_path()
+    t0 = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", StackWarning)
+        if isinstance(source, Stack):
+            stack = source
+        else:
+            stack = read_stack(source, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um,
+                               interval_h=s.interval_h, time_axis=s.time_axis)
+    stack_warnings = list(stack.warnings)
+    for w in caught:
+        if progress and issubclass(w.category, StackWarning):
+            print(f"apextrack: warning: {w.message}", file=sys.stderr)
+    stack.channel_index(s.channel)  # fail early on a bad channel
+    lap("read", t0)
+
+    staging = _Staging(out) if out is not None else None
+    try:
+        writer = None
+        if staging is not None:
+            import tifffile
+
+            writer = tifffile.TiffWriter(staging.path / "topview.tif", imagej=True)
+
+        def on_frame(t, view):
+            if writer is not None:
+                writer.write(view.astype(np.float32)[None], contiguous=True,
+                             resolution=(1.0 / stack.pixel_size_um[0], 1.0 / stack.pixel_size_um[1]),
+                             metadata={"axes": "TYX", "unit": "um", "finterval": stack.interval_h * 3600.0})
+
+        t0 = time.perf_counter()
+        try:
+            detections, centres = image_stage(stack, s, progress, on_frame)
+        finally:
+            if writer is not None:
+                writer.close()
+        lap("image", t0)
+        if detections.empty:
+            raise AnalysisError("no primordia found in any frame", stack.path,
+                                "check the channel, the primordium diameter range and --min-snr")
+
+        t0 = time.perf_counter()
+        tracks = link_detections(detections, s.link_search_um, s.link_memory)
+        tracks = add_polar(tracks, centres)
+        lap("link", t0)
+
+        t0 = time.perf_counter()
+        primordia, birth_info = order_primordia(tracks, s.co_initiation_h, s.min_track_frames)
+        lap("birth", t0)
+
+        t0 = time.perf_counter()
+        from .phyllotaxis import analyse_phyllotaxis
+
+        phyl = analyse_phyllotaxis(primordia, tracks, s)
+        lap("phyllotaxis", t0)
+
+        summary = dict(phyl.summary)
+        summary.update({
+            "stack": stack.name,
+            "n_frames": stack.n_frames,
+            "n_detections": int(len(detections)),
+            "n_tracks": int(tracks["track_id"].nunique()),
+            "n_primordia": int(len(primordia)),
+            "pixel_size_um": stack.pixel_size_um[0],
+            "z_step_um": None if not stack.has_z else stack.pixel_size_um[2],
+            "interval_h": stack.interval_h,
+            "birth_order": {k: v for k, v in birth_info.items()},
+            "settings": s.to_dict(),
+        })
+        run = {
+            "package": "apextrack",
+            "version": __version__,
+            "python": platform.python_version(),
+            "platform": platform.platform(),
+            "input": str(stack.path) if stack.path is not None else "array",
+            "input_sha256": _input_checksums(stack),
+            "stack": {"axes": stack.axes, "shape": list(stack.shape), "dtype": str(np.dtype(stack.data.dtype)),
+                      "format": stack.source_format, "pixel_size_um": list(stack.pixel_size_um),
+                      "interval_h": stack.interval_h, "channel_names": stack.channel_names},
+            "warnings": stack_warnings,
+            "settings": s.to_dict(),
+            "started": started,
+            "timings_s": timings,
+        }
+        result = AnalysisResult(detections=detections, tracks=tracks, primordia=primordia,
+                                divergence=phyl.divergence, centres=centres, summary=summary, run=run,
+                                settings=s, parastichies=getattr(phyl, "parastichies", pd.DataFrame()))
+        if staging is not None:
+            t0 = time.perf_counter()
+            write_results(result, staging.path)
+            lap("write", t0)
+            run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            run["wall_time_s"] = round(time.time() - t_start, 3)
+            write_json(run, staging.path / "run.json")
+            staging.commit()
+            result.out_dir = out
+        else:
+            run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+            run["wall_time_s"] = round(time.time() - t_start, 3)
+        return result
+    except BaseException:
+        if staging is not None:
+            staging.abort()
+        raise
+    finally:
+        if not isinstance(source, Stack):
+            stack.close()
+
+
+def write_results(result: AnalysisResult, folder: str | Path) -> None:
+    """Write every table and the summary of a result into ``folder`` (atomically, file by file)."""
+    folder = Path(folder)
+    for name, df in result.tables().items():
+        write_table(df, folder / f"{name}.csv", name if name in TABLE_FILES else None)
+    write_json(result.summary, folder / "summary.json")

@@ -1,0 +1,291 @@
+"""The table schema, CSV reading and writing with units, and atomic file output.
+
+Units live in column names (``time_h``, ``x_um``, ``theta_deg`` ...). Every table written here
+can be read back by :func:`read_table` to the same values: floats are written with 17
+significant digits (``repr`` precision, so they round-trip exactly), rows in a stable order.
+Every file is written to a temporary name in the destination folder and renamed into place, so
+an interrupted run never leaves half a table.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import OutputError, ResultsError
+
+
+@dataclass(frozen=True)
+class Column:
+    """One column of a table: its name, dtype kind, unit and meaning."""
+
+    name: str
+    kind: str  # "int", "float", "bool", "str"
+    unit: str
+    meaning: str
+    required: bool = True
+
+
+def _c(name, kind, unit, meaning, required=True):
+    return Column(name, kind, unit, meaning, required)
+
+
+#: Columns of each table. Required columns must be present when a table is read back;
+#: optional columns are written when a stage produces them.
+SCHEMA: dict[str, list[Column]] = {
+    "detections": [
+        _c("frame", "int", "", "timepoint index, from 0"),
+        _c("time_h", "float", "h", "time of the frame since the first frame"),
+        _c("x_um", "float", "µm", "blob centre, image column axis (x grows to the right)"),
+        _c("y_um", "float", "µm", "blob centre, image row axis (y grows downward)"),
+        _c("z_um", "float", "µm", "blob centre height (3D stacks only)", required=False),
+        _c("radius_um", "float", "µm", "blob radius (√2·σ of the best Laplacian-of-Gaussian scale)"),
+        _c("intensity", "float", "a.u.", "peak intensity above local background"),
+        _c("snr", "float", "", "signal-to-noise ratio: peak above background / background noise SD"),
+        _c("background", "float", "a.u.", "local background level", required=False),
+        _c("integrated_intensity", "float", "a.u.", "summed intensity above background within the radius", required=False),
+        _c("detection_id", "int", "", "row identifier of the detection", required=False),
+    ],
+    "tracks": [
+        _c("track_id", "int", "", "track identifier (one per primordium)"),
+        _c("r_um", "float", "µm", "distance from the apex centre"),
+        _c("theta_deg", "float", "deg", "azimuth about the apex centre, counter-clockwise on the displayed image, [0, 360)"),
+    ],
+    "primordia": [
+        _c("birth_rank", "int", "", "order of birth, 1 = first born in the record"),
+        _c("track_id", "int", "", "track of this primordium"),
+        _c("emergence_time_h", "float", "h", "estimated time of emergence"),
+        _c("emergence_frame", "int", "", "first frame in which the primordium is detected"),
+        _c("x_um", "float", "µm", "position at emergence (first detection), image column axis"),
+        _c("y_um", "float", "µm", "position at emergence (first detection), image row axis"),
+        _c("r_um", "float", "µm", "distance from the apex centre at emergence"),
+        _c("theta_deg", "float", "deg", "azimuth at emergence, counter-clockwise, [0, 360)"),
+        _c("co_initiated", "bool", "", "true when the birth order with a neighbour cannot be told apart"),
+        _c("emergence_time_sd_h", "float", "h", "uncertainty (1 SD) of the emergence time", required=False),
+        _c("rank_confidence", "float", "", "probability that the rank is right given the timing uncertainty", required=False),
+    ],
+    "divergence": [
+        _c("from_rank", "int", "", "birth rank of the earlier primordium"),
+        _c("to_rank", "int", "", "birth rank of the next primordium"),
+        _c("angle_deg", "float", "deg", "divergence angle in the direction of the generative spiral, [0, 360)"),
+        _c("interval_h", "float", "h", "time between the two emergences"),
+    ],
+}
+
+# tracks carry every detection column as well
+SCHEMA["tracks"] = SCHEMA["detections"] + SCHEMA["tracks"]
+
+#: File name of each table in a results folder.
+TABLE_FILES = {name: f"{name}.csv" for name in SCHEMA}
+
+
+def columns_of(table: str, required_only: bool = False) -> list[str]:
+    """Column names of a table in schema order."""
+    return [c.name for c in SCHEMA[table] if c.required or not required_only]
+
+
+def order_columns(df: pd.DataFrame, table: str) -> pd.DataFrame:
+    """Put the schema columns first (in schema order), then any extra columns in their order."""
+    known = [c for c in columns_of(table) if c in df.columns]
+    extra = [c for c in df.columns if c not in known]
+    return df[known + extra]
+
+
+def _format_float(x: float) -> str:
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return ""
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    return repr(float(x))
+
+
+def to_csv_text(df: pd.DataFrame) -> str:
+    """Render a DataFrame as CSV text with exact, deterministic float formatting."""
+    out = pd.DataFrame(index=df.index)
+    for name in df.columns:
+        s = df[name]
+        if pd.api.types.is_bool_dtype(s):
+            out[name] = s.map(lambda v: "true" if bool(v) else "false")
+        elif pd.api.types.is_float_dtype(s):
+            out[name] = s.map(_format_float)
+        elif pd.api.types.is_integer_dtype(s):
+            out[name] = s.map(lambda v: "" if pd.isna(v) else str(int(v)))
+        else:
+            out[name] = s.map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v))
+    return out.to_csv(index=False, lineterminator="\n")
+
+
+def atomic_write_text(path: str | Path, text: str) -> None:
+    """Write text to ``path`` through a temporary file in the same folder and a rename."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    except OSError as exc:
+        raise OutputError(f"cannot write here ({exc.strerror or exc})", path.parent,
+                          "choose another output folder") from None
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def atomic_write_bytes(path: str | Path, data: bytes) -> None:
+    """Write bytes to ``path`` through a temporary file and a rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def write_table(df: pd.DataFrame, path: str | Path, table: str | None = None) -> Path:
+    """Write a table as CSV (atomically); schema columns first when ``table`` is given."""
+    if table is not None:
+        df = order_columns(df, table)
+    atomic_write_text(path, to_csv_text(df.reset_index(drop=True)))
+    return Path(path)
+
+
+def _json_default(obj: Any):
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, (set, tuple)):
+        return list(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def _clean_json(obj: Any) -> Any:
+    """Replace NaN/inf by None so that the JSON is standard."""
+    if isinstance(obj, dict):
+        return {str(k): _clean_json(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean_json(v) for v in obj]
+    if isinstance(obj, (float, np.floating)):
+        v = float(obj)
+        return None if (math.isnan(v) or math.isinf(v)) else v
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def to_json_text(obj: Any) -> str:
+    """Deterministic JSON text (sorted keys, NaN as null)."""
+    return json.dumps(_clean_json(obj), indent=2, sort_keys=True, default=_json_default,
+                      ensure_ascii=False) + "\n"
+
+
+def write_json(obj: Any, path: str | Path) -> Path:
+    """Write JSON atomically with deterministic formatting."""
+    atomic_write_text(path, to_json_text(obj))
+    return Path(path)
+
+
+def read_json(path: str | Path) -> Any:
+    """Read a JSON file, with a clear error when it is missing or broken."""
+    path = Path(path)
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ResultsError("file is missing", path, "re-run the analysis") from None
+    except json.JSONDecodeError as exc:
+        raise ResultsError(f"not valid JSON ({exc.msg} at line {exc.lineno})", path,
+                           "re-run the analysis") from None
+
+
+_KIND_DTYPE = {"int": "int64", "float": "float64", "bool": "bool", "str": "object"}
+
+
+def read_table(path: str | Path, table: str | None = None) -> pd.DataFrame:
+    """Read a CSV table written by :func:`write_table`.
+
+    When ``table`` names a schema, the required columns are checked and schema columns get
+    their dtype; a missing or renamed column raises :class:`~apextrack.errors.ResultsError`.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise ResultsError("table is missing", path, "re-run the analysis or give the right folder")
+    try:
+        df = pd.read_csv(path, keep_default_na=True, na_values=[""],
+                         dtype=str if table is None else None)
+    except pd.errors.EmptyDataError:
+        raise ResultsError("table is empty (no header)", path, "re-run the analysis") from None
+    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise ResultsError(f"not a readable CSV table ({str(exc).splitlines()[0]})", path,
+                           "re-run the analysis") from None
+    if table is None:
+        return df
+    missing = [c for c in columns_of(table, required_only=True) if c not in df.columns]
+    if missing:
+        raise ResultsError(
+            f"{table} table lacks column(s) {', '.join(missing)} (found: {', '.join(map(str, df.columns))})",
+            path, "columns and units must be as apextrack writes them")
+    for col in SCHEMA[table]:
+        if col.name not in df.columns:
+            continue
+        s = df[col.name]
+        try:
+            if col.kind == "bool":
+                if s.dtype != bool:
+                    s = s.map(lambda v: str(v).strip().lower() in ("true", "1", "yes"))
+                df[col.name] = s.astype(bool)
+            elif col.kind == "int":
+                if s.isna().any():
+                    df[col.name] = s.astype("Int64")
+                else:
+                    df[col.name] = s.astype("int64")
+            elif col.kind == "float":
+                df[col.name] = pd.to_numeric(s, errors="raise").astype("float64")
+        except (ValueError, TypeError):
+            raise ResultsError(f"column {col.name} holds values that are not {col.kind}", path,
+                               "columns and units must be as apextrack writes them") from None
+    return df
+
+
+def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
+    """SHA-256 checksum of a file (read in chunks)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(chunk)
+            if not block:
+                break
+            h.update(block)
+    return h.hexdigest()
