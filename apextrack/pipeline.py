@@ -21,15 +21,16 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .apex import centre_from_view
+from .apex import centre_from_view, choose_centres
 from .birth import order_primordia
 from .detect import detect_blobs, detections_to_um, scales_px
 from .errors import AnalysisError, OutputError
 from .link import add_polar, link_detections
 from .projection import top_view
+from .results import write_result_tables
 from .settings import Settings, from_dict
 from .stack import Stack, StackWarning, read_stack
-from .tables import TABLE_FILES, sha256_file, write_json, write_table
+from .tables import sha256_file, write_json
 
 #: Files every results folder holds.
 RESULT_FILES = ["detections.csv", "tracks.csv", "primordia.csv", "divergence.csv", "summary.json", "run.json"]
@@ -138,6 +139,37 @@ class _Staging:
         shutil.rmtree(self.path, ignore_errors=True)
 
 
+class TopViewWriter:
+    """Writes the top view of every frame into an ImageJ ``TYX`` float32 TIFF, one frame at a time.
+
+    The file (header and the full frame layout) is created first; each frame is then written at
+    its offset, so no more than one frame is ever held in memory.
+    """
+
+    def __init__(self, path: Path, stack: Stack):
+        import tifffile
+
+        ny, nx = stack.shape_yx
+        px, py = stack.pixel_size_um[0], stack.pixel_size_um[1]
+        mm = tifffile.memmap(path, shape=(stack.n_frames, ny, nx), dtype=np.float32, imagej=True,
+                             resolution=(1.0 / px, 1.0 / py),
+                             metadata={"axes": "TYX", "unit": "um", "finterval": stack.interval_h * 3600.0})
+        self.offset, self.dtype, self.frame_bytes = int(mm.offset), mm.dtype, ny * nx * mm.dtype.itemsize
+        self.shape_yx = (ny, nx)
+        del mm
+        self._file = open(path, "r+b")
+
+    def write(self, t: int, view: np.ndarray) -> None:
+        if view.shape != self.shape_yx:
+            raise ValueError(f"top view of frame {t} has shape {view.shape}, expected {self.shape_yx}")
+        self._file.seek(self.offset + t * self.frame_bytes)
+        self._file.write(np.ascontiguousarray(view, dtype=self.dtype).tobytes())
+
+    def close(self) -> None:
+        if not self._file.closed:
+            self._file.close()
+
+
 def _input_checksums(stack: Stack) -> dict[str, str]:
     if stack.path is None:
         return {}
@@ -156,6 +188,15 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     (e.g. to write the top views) so that no more than one frame is held in memory.
     """
     px = stack.pixel_size_um[0]
+    ny, nx = stack.shape_yx
+    if s.centre_um is not None:
+        cx, cy = s.centre_um
+        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
+            from .errors import SettingsError
+
+            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
+                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
+                                "give --centre X,Y in µm inside the image")
     sigmas = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, px, s.n_scales)
     det_parts, centre_rows = [], []
     times = stack.times_h()
@@ -174,17 +215,64 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
         det_parts.append(detections_to_um(blobs, t, float(times[t]), px))
     centres = pd.DataFrame(centre_rows, columns=["frame", "time_h", "x_um", "y_um", "method"])
     detections = pd.concat(det_parts, ignore_index=True) if det_parts else pd.DataFrame()
-    ny, nx = stack.shape_yx
-    if s.centre_um is not None:
-        cx, cy = s.centre_um
-        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
-            from .errors import SettingsError
-
-            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
-                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
-                                "give --centre X,Y in µm inside the image")
     detections.insert(0, "detection_id", np.arange(len(detections), dtype=np.int64))
     return detections, centres
+
+
+@dataclass
+class Measurements:
+    """What :func:`measure_tracks` derives from tracks: primordia, angles and summary."""
+
+    tracks: pd.DataFrame
+    primordia: pd.DataFrame
+    phyllotaxis: Any
+    birth_info: dict
+
+
+def measure_tracks(tracks: pd.DataFrame, centres: pd.DataFrame, settings: Settings,
+                   primordia: pd.DataFrame | None = None) -> Measurements:
+    """Everything after linking: polar coordinates about the apex centre, emergence times and
+    birth order, and the phyllotaxis measurements.
+
+    This is what is re-run after a person edits tracks (or, with ``primordia`` given, the birth
+    ranks) in the viewer.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Linked detections (``track_id``, ``frame``, ``time_h``, ``x_um``, ``y_um`` ...).
+    centres : DataFrame
+        Apex centre per frame (``frame``, ``x_um``, ``y_um``).
+    settings : Settings
+    primordia : DataFrame, optional
+        A primordia table whose ``birth_rank`` / ``co_initiated`` were set by hand: kept as given
+        instead of being re-estimated.
+    """
+    tracks = add_polar(tracks, centres)
+    if primordia is None:
+        primordia, birth_info = order_primordia(tracks, settings.co_initiation_h, settings.min_track_frames)
+    else:
+        primordia = primordia.sort_values("birth_rank", kind="stable").reset_index(drop=True)
+        birth_info = {"method": "birth ranks set by hand"}
+    from .phyllotaxis import analyse_phyllotaxis
+
+    phyl = analyse_phyllotaxis(primordia, tracks, settings)
+    return Measurements(tracks=tracks, primordia=primordia, phyllotaxis=phyl, birth_info=birth_info)
+
+
+def make_summary(measured: Measurements, detections: pd.DataFrame, settings: Settings, context: dict) -> dict:
+    """The ``summary.json`` content: the phyllotaxis summary, counts, the stack's scale
+    (``context``: stack, n_frames, pixel_size_um, z_step_um, interval_h) and the settings."""
+    summary = dict(measured.phyllotaxis.summary)
+    summary.update(context)
+    summary.update({
+        "n_detections": int(len(detections)),
+        "n_tracks": int(measured.tracks["track_id"].nunique()),
+        "n_primordia": int(len(measured.primordia)),
+        "birth_order": dict(measured.birth_info),
+        "settings": settings.to_dict(),
+    })
+    return summary
 
 
 def analyse(source=None, out: str | Path | None = None, settings: Settings | dict | None = None, *,
@@ -241,17 +329,11 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
 
     staging = _Staging(out) if out is not None else None
     try:
-        writer = None
-        if staging is not None:
-            import tifffile
-
-            writer = tifffile.TiffWriter(staging.path / "topview.tif", imagej=True)
+        writer = TopViewWriter(staging.path / "topview.tif", stack) if staging is not None else None
 
         def on_frame(t, view):
             if writer is not None:
-                writer.write(view.astype(np.float32)[None], contiguous=True,
-                             resolution=(1.0 / stack.pixel_size_um[0], 1.0 / stack.pixel_size_um[1]),
-                             metadata={"axes": "TYX", "unit": "um", "finterval": stack.interval_h * 3600.0})
+                writer.write(t, view)
 
         t0 = time.perf_counter()
         try:
@@ -266,32 +348,20 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
 
         t0 = time.perf_counter()
         tracks = link_detections(detections, s.link_search_um, s.link_memory)
-        tracks = add_polar(tracks, centres)
+        centres, centre_info = choose_centres(tracks, centres, s.centre_method, s.centre_um)
         lap("link", t0)
 
         t0 = time.perf_counter()
-        primordia, birth_info = order_primordia(tracks, s.co_initiation_h, s.min_track_frames)
-        lap("birth", t0)
+        measured = measure_tracks(tracks, centres, s)
+        tracks, primordia, phyl, birth_info = (measured.tracks, measured.primordia, measured.phyllotaxis,
+                                               measured.birth_info)
+        lap("birth_and_phyllotaxis", t0)
 
-        t0 = time.perf_counter()
-        from .phyllotaxis import analyse_phyllotaxis
-
-        phyl = analyse_phyllotaxis(primordia, tracks, s)
-        lap("phyllotaxis", t0)
-
-        summary = dict(phyl.summary)
-        summary.update({
-            "stack": stack.name,
-            "n_frames": stack.n_frames,
-            "n_detections": int(len(detections)),
-            "n_tracks": int(tracks["track_id"].nunique()),
-            "n_primordia": int(len(primordia)),
-            "pixel_size_um": stack.pixel_size_um[0],
-            "z_step_um": None if not stack.has_z else stack.pixel_size_um[2],
-            "interval_h": stack.interval_h,
-            "birth_order": {k: v for k, v in birth_info.items()},
-            "settings": s.to_dict(),
-        })
+        context = {"stack": stack.name, "n_frames": stack.n_frames, "pixel_size_um": stack.pixel_size_um[0],
+                   "z_step_um": None if not stack.has_z else stack.pixel_size_um[2],
+                   "interval_h": stack.interval_h}
+        summary = make_summary(measured, detections, s, context)
+        summary["centre"] = centre_info
         run = {
             "package": "apextrack",
             "version": __version__,
@@ -334,7 +404,4 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
 
 def write_results(result: AnalysisResult, folder: str | Path) -> None:
     """Write every table and the summary of a result into ``folder`` (atomically, file by file)."""
-    folder = Path(folder)
-    for name, df in result.tables().items():
-        write_table(df, folder / f"{name}.csv", name if name in TABLE_FILES else None)
-    write_json(result.summary, folder / "summary.json")
+    write_result_tables(result.tables(), result.summary, folder)

@@ -456,7 +456,7 @@ def clear_mot_measures(truth, pred, gate: float, coords=("x", "y")) -> dict:
         fps += int((~used_p).sum())
     n_obj = tg.n_nodes
     mota = 1.0 - (misses + fps + switches) / n_obj if n_obj else math.nan
-    motp = dsum / nmatch if nmatch else math.nan
+    motp = float(dsum / nmatch) if nmatch else math.nan
     return {"MOTA": mota, "MOTP": motp, "mot_misses": misses, "mot_false_positives": fps,
             "mot_switches": switches, "mot_matches": nmatch}
 

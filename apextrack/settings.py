@@ -41,7 +41,7 @@ class Settings:
     projection: str = _p("max", "", "top view of each 3D timepoint: 'max' (maximum) or 'surface' (shell below the dome surface)", choices=["max", "surface"])
     shell_depth_um: float = _p(6.0, "µm", "depth of the shell below the dome surface (surface projection)", low=0.0)
     centre_um: tuple[float, float] | None = _p(None, "µm", "apex centre (x, y) fixed by the user instead of fitted", kind="pair")
-    centre_method: str = _p("auto", "", "apex centre: 'dome' (fit of the dome), 'pattern' (most regular spiral), 'auto'", choices=["auto", "dome", "pattern"])
+    centre_method: str = _p("auto", "", "apex centre: 'dome' (centre of the dome in the top view), 'motion' (where the primordia's outward motion starts), 'auto' (motion when enough tracks, else dome)", choices=["auto", "dome", "motion"])
     primordium_diameter_min_um: float = _p(6.0, "µm", "smallest primordium diameter to detect", low=0.0)
     primordium_diameter_max_um: float = _p(20.0, "µm", "largest primordium diameter to detect", low=0.0)
     n_scales: int = _p(6, "", "number of scales of the Laplacian-of-Gaussian search", low=1, high=50)

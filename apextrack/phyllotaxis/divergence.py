@@ -28,7 +28,24 @@ def _sorted_primordia(primordia: pd.DataFrame) -> pd.DataFrame:
     return p
 
 
-def successive_azimuths(primordia: pd.DataFrame, tracks: pd.DataFrame | None = None) -> pd.DataFrame:
+def _same_node(coinit: np.ndarray, intervals: np.ndarray, co_initiation_h: float | None) -> np.ndarray:
+    """Per successive pair: both organs flagged co-initiated and born within the co-initiation
+    window (``co_initiation_h``, else a quarter of the typical interval between nodes)."""
+    both = coinit[:-1] & coinit[1:]
+    if not both.any():
+        return both
+    gaps = np.abs(intervals)
+    if co_initiation_h is None:
+        finite = gaps[np.isfinite(gaps)]
+        big = finite[finite > 0.1 * finite.max()] if finite.size and finite.max() > 0 else finite
+        tol = 0.25 * float(np.median(big)) if big.size else 0.0
+    else:
+        tol = float(co_initiation_h)
+    return both & (~np.isfinite(gaps) | (gaps <= tol))
+
+
+def successive_azimuths(primordia: pd.DataFrame, tracks: pd.DataFrame | None = None,
+                        co_initiation_h: float | None = None) -> pd.DataFrame:
     """Azimuths of each successive pair of primordia, in a common frame where possible.
 
     Parameters
@@ -45,7 +62,8 @@ def successive_azimuths(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
         One row per pair: ``from_rank``, ``to_rank``, ``from_theta_deg``, ``to_theta_deg``,
         ``frame`` (common frame, -1 when none), ``angle_source`` ("common_frame" or
         "emergence"), ``signed_angle_deg`` in [-180, 180), ``interval_h``, ``co_initiated``
-        (both organs flagged co-initiated).
+        (the two organs were initiated together: both flagged and born within
+        ``co_initiation_h``, by default a quarter of the typical interval between nodes).
     """
     p = _sorted_primordia(primordia)
     cols = ["from_rank", "to_rank", "from_theta_deg", "to_theta_deg", "frame", "angle_source",
@@ -80,9 +98,10 @@ def successive_azimuths(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
             "from_theta_deg": th_a, "to_theta_deg": th_b, "frame": frame, "angle_source": source,
             "signed_angle_deg": float(circ.circ_diff(th_b, th_a)),
             "interval_h": float(times[i + 1] - times[i]),
-            "co_initiated": bool(coinit[i] and coinit[i + 1]),
         })
-    return pd.DataFrame(rows, columns=cols)
+    out = pd.DataFrame(rows, columns=cols[:-1])
+    out["co_initiated"] = _same_node(coinit, out["interval_h"].to_numpy(float), co_initiation_h)
+    return out
 
 
 def decide_chirality(signed_angles, ambiguous_deg: float = 5.0) -> dict:

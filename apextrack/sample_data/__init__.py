@@ -1,0 +1,1 @@
+"""Bundled demo stacks (package data); see sample_stacks/README.md."""
