@@ -97,7 +97,7 @@ def circ_sd(angles, weights=None) -> float:
     r = resultant_length(angles, weights)
     if math.isnan(r):
         return math.nan
-    if r <= 0:
+    if r < 1e-12:  # zero resultant (up to rounding): no concentration at all
         return math.inf
     return math.degrees(math.sqrt(max(0.0, -2.0 * math.log(r))))
 

@@ -322,6 +322,16 @@ def _ratio_values(res: dict):
     return "summary", (float(val), None if se is None else float(se))
 
 
+def _reasons(ra: dict, rb: dict, key: str) -> str:
+    """The analysis' own reasons for a missing quantity, as a note suffix."""
+    out = []
+    for name, r in (("a", ra), ("b", rb)):
+        why = r["summary"].get("reasons")
+        if isinstance(why, dict) and why.get(key):
+            out.append(f"{name}: {why[key]}")
+    return ("; " + "; ".join(out)) if out else ""
+
+
 def _row(quantity, va, vb, stat, p, test, notes, lo=math.nan, hi=math.nan):
     return {"quantity": quantity, "value_a": va, "value_b": vb, "statistic": stat,
             "p_value": p, "ci_low": lo, "ci_high": hi, "test": test, "notes": notes}
@@ -396,7 +406,7 @@ def compare_results(a, b, seed: int = 0, n_permutations: int = 9999,
         which = " and ".join(n for n, c in (("a", pca), ("b", pcb)) if not c)
         rows.append(_row("permutation_frequency", math.nan, math.nan, math.nan, math.nan,
                          "Fisher's exact test", f"not reported in summary.json of {which} "
-                         "(n_permuted or permutations)"))
+                         "(n_permuted or permutations)" + _reasons(ra, rb, "permutations")))
     ca, cb = ra["primordia"]["co_initiated"], rb["primordia"]["co_initiated"]
     if len(ca) and len(cb):
         ka, kb = int(ca.sum()), int(cb.sum())
@@ -426,7 +436,8 @@ def _ratio_row(ra, rb):
     if va is None or vb is None:
         which = " and ".join(n for n, v in (("a", va), ("b", vb)) if v is None)
         return _row(name, math.nan, math.nan, math.nan, math.nan, "none",
-                    f"plastochron ratio not reported by {which}")
+                    f"plastochron ratio not reported by {which}"
+                    + _reasons(ra, rb, "plastochron_ratio"))
     if va[0] == "values" and vb[0] == "values" and va[1].size and vb[1].size:
         d, p = plastochron_ks(np.log(va[1]), np.log(vb[1]))
         return _row(name, float(np.exp(np.mean(np.log(va[1])))),
@@ -520,6 +531,7 @@ def comparison_figure(angles_a, angles_b, intervals_a=(), intervals_b=(), labels
         iv = np.sort(iv[np.isfinite(iv)])
         if iv.size:
             ax2.step(iv, np.arange(1, iv.size + 1) / iv.size, where="post", color=col, label=lab)
+    ax0.set_yticklabels([])
     ax0.set_title("divergence angles")
     ax1.set_xlabel("divergence angle (deg)")
     ax1.set_ylabel("density (1/deg)")

@@ -293,6 +293,8 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         e.g. ``analyse(path, pixel_size_um=0.5)``.
     progress : bool
         Show progress bars on stderr.
+    write_report : bool, optional
+        Write ``report.html`` and ``figures/`` into ``out`` (default: ``settings.report``).
 
     Returns
     -------
@@ -384,6 +386,13 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             t0 = time.perf_counter()
             write_results(result, staging.path)
             lap("write", t0)
+            if s.report if write_report is None else write_report:
+                # report.html + figures/, drawn from the tables and one top-view frame read from disk
+                from .report import write_report as _write_report
+
+                t0 = time.perf_counter()
+                _write_report(result, staging.path)
+                lap("report", t0)
             run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             run["wall_time_s"] = round(time.time() - t_start, 3)
             write_json(run, staging.path / "run.json")

@@ -21,7 +21,8 @@ The measures here are implemented from their published definitions:
   tracks are paired one-to-one with computed tracks or with dummy tracks (cost ε per
   reference point) by an optimal assignment. α = 1 − d(X, Y*)/d(X, ∅) and
   β = (d(X, ∅) − d(X, Y*)) / (d(X, ∅) + d(Ȳ, ∅)) where Ȳ are the computed tracks left
-  unpaired (spurious). Matched points are points of paired tracks in the same frame closer
+  unpaired (spurious). A computed track with no point within ε of a reference track is never
+  paired with it (that pairing would cost at least as much as the dummy). Matched points are points of paired tracks in the same frame closer
   than ε (strictly: a point at exactly ε costs as much as a missing one).
 * **MOTA** (CLEAR MOT; Bernardin & Stiefelhagen 2008, EURASIP J. Image Video Proc.) and
   **IDF1** (Ristani et al. 2016, ECCV workshops), with the same gate.
@@ -357,7 +358,10 @@ def particle_tracking_measures(truth, pred, eps: float, coords=("x", "y")) -> di
     d_dummy = eps * len_t
     big = eps * (len_t.sum() + len_p.sum()) + 1.0
     cost = np.full((nt, npr + nt), big)
-    cost[:, :npr] = d_pair
+    # a computed track with no point within ε of a reference track brings nothing to it
+    # (paired or not, the cost is the same or higher): such pairs are not allowed, so ties
+    # go to the dummy track and a far track is counted as spurious
+    cost[:, :npr] = np.where(gain > 0, d_pair, big)
     cost[np.arange(nt), npr + np.arange(nt)] = d_dummy
     pairing = {}
     paired_p = np.full(nt, -1)
@@ -582,8 +586,10 @@ def birth_order_accuracy(true_rank: dict, pred_rank: dict, track_pairs: dict) ->
 def read_truth(truth_csv: str | Path) -> pd.DataFrame:
     """Read a ground-truth table (one row per primordium per frame).
 
-    Required columns: ``primordium``, ``birth_rank``, ``frame``, ``x_um``, ``y_um``. When a
-    boolean column ``visible`` is present, rows with ``visible`` false are left out.
+    Required columns: ``primordium``, ``birth_rank``, ``frame``, ``x_um``, ``y_um`` (as
+    written by :func:`apextrack.model.write_synthetic`). Rows that cannot be seen in the
+    images are left out: ``visible`` false (centre outside the field of view) or
+    ``frame_status`` "missing" (a blank frame), when those columns are present.
 
     Raises
     ------
@@ -610,6 +616,8 @@ def read_truth(truth_csv: str | Path) -> pd.DataFrame:
     if "visible" in out.columns:
         vis = out["visible"].map(lambda v: str(v).strip().lower() in ("true", "1", "yes"))
         out = out[vis.to_numpy()]
+    if "frame_status" in out.columns:
+        out = out[(out["frame_status"].astype(str).str.strip().str.lower() != "missing").to_numpy()]
     return out.reset_index(drop=True)
 
 

@@ -124,6 +124,13 @@ def to_csv_text(df: pd.DataFrame) -> str:
     return out.to_csv(index=False, lineterminator="\n")
 
 
+def _umask_mode() -> int:
+    """File mode an ordinary ``open()`` would give (0o666 less the umask)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
 def atomic_write_text(path: str | Path, text: str) -> None:
     """Write text to ``path`` through a temporary file in the same folder and a rename."""
     path = Path(path)
@@ -138,6 +145,7 @@ def atomic_write_text(path: str | Path, text: str) -> None:
             fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, _umask_mode())
         os.replace(tmp, path)
     except BaseException:
         try:
@@ -157,6 +165,7 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> None:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, _umask_mode())
         os.replace(tmp, path)
     except BaseException:
         try:

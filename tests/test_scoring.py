@@ -92,9 +92,10 @@ def test_particle_measures_perfect_and_empty():
 
 
 def test_particle_measures_far_track_is_not_paired():
-    # A computed track that is everywhere beyond ε costs more paired (ε per point of both
-    # tracks) than the dummy (ε per true point): the optimal pairing uses the dummy, so the
-    # far track is spurious. Definition-based, Chenouard et al. 2014.
+    # A computed track everywhere beyond ε over the same frames costs ε per frame paired,
+    # exactly as much as the dummy (25 = 25): pairing it gains nothing, so it is spurious
+    # (our tie rule: a pair needs at least one point within ε; definitions of Chenouard et
+    # al. 2014). Extra frames would make the pairing strictly worse than the dummy.
     truth, _ = _hand_example()
     far = truth.assign(track=9, y=20.0)
     r = particle_tracking_measures(truth, far, eps=5.0)

@@ -78,7 +78,9 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
     -------
     dict
         ``mode`` ("spiral", "distichous", "decussate", "whorled", "multijugate" or None),
-        ``organs_per_node``, ``node_rotation_deg`` (β; the divergence for a spiral),
+        ``organs_per_node``, ``node_rotation_deg`` (β; the divergence for a spiral; for a
+        multijugate pattern folded to at most 180/k, since a node of k organs looks the same
+        after 360/k),
         ``evidence`` (n_fit, n_angles, fraction, tolerance_deg, and the fit of every candidate),
         ``reason`` (why no mode, else None).
 
@@ -149,6 +151,10 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
             mode = "decussate" if k == 2 else "whorled"
         else:
             mode = "multijugate" if k >= 2 else "spiral"
+            # a node of k organs looks the same after 360/k: a turn β one way is a turn
+            # 360/k − β the other way; report the smaller one (≤ 180/k)
+            if not math.isnan(bmod):
+                beta = min(bmod, step - bmod)
     ev = {"n_fit": int(winner["n_fit"]), "n_angles": int(a.size),
           "fraction": float(winner["n_fit"] / a.size), "tolerance_deg": float(tolerance),
           "candidates": [{"organs_per_node": int(c["k"]), "kind": c["kind"], "n_fit": int(c["n_fit"]),

@@ -1,0 +1,361 @@
+"""Many stacks on dask: one task per stack, results per stack, ``experiment.csv`` and an
+experiment report.
+
+Each task receives a *path* (never an array) and opens its own file in the worker, so that
+memory-mapped and zarr-backed stacks stream from disk there (a zarr store built by tifffile
+cannot be pickled, and a pickled memory map is sent as the whole array). A stack that fails is
+reported in one line and in ``experiment.csv`` (``status`` = ``failed`` with the error); the
+others go on.
+
+The cluster is an existing one when a scheduler address is given, else a
+:class:`distributed.LocalCluster` of worker *processes* (one per core, one thread each). Worker
+processes are spawned: a script that calls :func:`run_batch` must guard its entry point with
+``if __name__ == "__main__":``.
+"""
+
+from __future__ import annotations
+
+import glob as _glob
+import os
+import re
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import pandas as pd
+
+from .errors import ApextrackError, InputError
+from .settings import Settings, from_dict
+from .stack import TIFF_SUFFIXES
+from .tables import write_table
+
+#: Columns of ``experiment.csv``, in order.
+EXPERIMENT_COLUMNS = [
+    "stack", "source", "status", "error", "results_dir", "n_frames", "interval_h", "pixel_size_um",
+    "n_detections", "n_tracks", "n_primordia", "n_co_initiated", "chirality",
+    "divergence_mean_deg", "divergence_sd_deg", "divergence_ci_low_deg", "divergence_ci_high_deg",
+    "plastochron_h", "plastochron_ci_low_h", "plastochron_ci_high_h", "plastochron_growth_h",
+    "plastochron_ratio", "plastochron_ratio_ci_low", "plastochron_ratio_ci_high", "phyllotaxis_index",
+    "parastichy_m", "parastichy_n", "parastichy_class", "mode", "n_permutations", "n_permuted",
+    "wall_time_s",
+]
+_INT_COLUMNS = ["n_frames", "n_detections", "n_tracks", "n_primordia", "n_co_initiated", "parastichy_m",
+                "parastichy_n", "n_permutations", "n_permuted"]
+_FLOAT_COLUMNS = [c for c in EXPERIMENT_COLUMNS if c not in _INT_COLUMNS and c not in
+                  ("stack", "source", "status", "error", "results_dir", "chirality", "parastichy_class", "mode")]
+
+
+# ----------------------------------------------------------------------------------------------
+# finding stacks
+# ----------------------------------------------------------------------------------------------
+def _is_tiff(p: Path) -> bool:
+    return p.is_file() and p.name.lower().endswith(TIFF_SUFFIXES) and not p.name.startswith(".")
+
+
+def _is_zarr(p: Path) -> bool:
+    return p.is_dir() and (p.suffix.lower() == ".zarr" or (p / "zarr.json").exists() or (p / ".zarray").exists()
+                           or (p / ".zgroup").exists())
+
+
+def _natural(p: Path):
+    return [int(t) if t.isdigit() else t.lower() for t in re.split(r"(\d+)", p.name)]
+
+
+def find_stacks(source: str | Path | Sequence[str | Path]) -> list[Path]:
+    """The stacks a batch analyses.
+
+    Parameters
+    ----------
+    source : str, Path or sequence of them
+        A folder (each TIFF file, each ``.zarr`` and each sub-folder holding TIFF files — one
+        file per timepoint — is one stack), a glob pattern (``"plants/*.tif"``) or a list of
+        stack paths.
+
+    Returns
+    -------
+    list of Path
+        In natural order (``p2`` before ``p10``).
+
+    Raises
+    ------
+    InputError
+        When nothing is found.
+    """
+    if isinstance(source, (list, tuple)):
+        paths = [Path(p) for p in source]
+        missing = [p for p in paths if not p.exists()]
+        if missing:
+            raise InputError("stack not found", missing[0], "check the path")
+        return paths
+    text = str(source)
+    if any(ch in text for ch in "*?["):
+        hits = [Path(p) for p in _glob.glob(text, recursive=True)]
+        stacks = [p for p in hits if _is_tiff(p) or _is_zarr(p) or (p.is_dir() and any(_is_tiff(q) for q in p.iterdir()))]
+        where = text
+    else:
+        folder = Path(text)
+        if not folder.exists():
+            raise InputError("folder not found", folder, "give a folder of stacks or a glob pattern such as 'data/*.tif'")
+        if folder.is_file() or _is_zarr(folder):
+            return [folder]
+        stacks = []
+        for p in folder.iterdir():
+            if p.name.startswith("."):
+                continue
+            if _is_tiff(p) or _is_zarr(p):
+                stacks.append(p)
+            elif p.is_dir() and any(_is_tiff(q) for q in p.iterdir()):
+                stacks.append(p)
+        where = folder
+    if not stacks:
+        raise InputError("no stacks found (TIFF files, .zarr folders or folders of timepoint TIFFs)", where,
+                         "give a folder of stacks or a glob pattern such as 'data/*.tif'")
+    return sorted(stacks, key=_natural)
+
+
+def stack_names(paths: Iterable[Path]) -> list[str]:
+    """Results sub-folder names: the file names without their suffix, made unique."""
+    names, seen = [], {}
+    for p in paths:
+        name = p.name
+        for suffix in (".ome.tiff", ".ome.tif") + tuple(TIFF_SUFFIXES) + (".zarr",):
+            if name.lower().endswith(suffix):
+                name = name[: -len(suffix)]
+                break
+        name = name or "stack"
+        k = seen.get(name, 0)
+        seen[name] = k + 1
+        names.append(name if k == 0 else f"{name}_{k + 1}")
+    return names
+
+
+# ----------------------------------------------------------------------------------------------
+# one stack (runs in a worker)
+# ----------------------------------------------------------------------------------------------
+def _pair(v, i):
+    if isinstance(v, (list, tuple)) and len(v) == 2 and v[i] is not None:
+        return v[i]
+    return None
+
+
+def summary_row(summary: dict) -> dict[str, Any]:
+    """The ``experiment.csv`` figures of one analysis summary (``None`` where not estimable)."""
+    pair = summary.get("parastichy_pair")
+    return {
+        "n_frames": summary.get("n_frames"), "interval_h": summary.get("interval_h"),
+        "pixel_size_um": summary.get("pixel_size_um"), "n_detections": summary.get("n_detections"),
+        "n_tracks": summary.get("n_tracks"), "n_primordia": summary.get("n_primordia"),
+        "n_co_initiated": summary.get("n_co_initiated"), "chirality": summary.get("chirality"),
+        "divergence_mean_deg": summary.get("divergence_mean_deg"),
+        "divergence_sd_deg": summary.get("divergence_sd_deg"),
+        "divergence_ci_low_deg": _pair(summary.get("divergence_ci_deg"), 0),
+        "divergence_ci_high_deg": _pair(summary.get("divergence_ci_deg"), 1),
+        "plastochron_h": summary.get("plastochron_h"),
+        "plastochron_ci_low_h": _pair(summary.get("plastochron_ci_h"), 0),
+        "plastochron_ci_high_h": _pair(summary.get("plastochron_ci_h"), 1),
+        "plastochron_growth_h": summary.get("plastochron_growth_h"),
+        "plastochron_ratio": summary.get("plastochron_ratio"),
+        "plastochron_ratio_ci_low": _pair(summary.get("plastochron_ratio_ci"), 0),
+        "plastochron_ratio_ci_high": _pair(summary.get("plastochron_ratio_ci"), 1),
+        "phyllotaxis_index": summary.get("phyllotaxis_index"),
+        "parastichy_m": _pair(pair, 0), "parastichy_n": _pair(pair, 1),
+        "parastichy_class": summary.get("parastichy_class"), "mode": summary.get("mode"),
+        "n_permutations": summary.get("n_permutations"), "n_permuted": summary.get("n_permuted"),
+    }
+
+
+def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool = False,
+                       name: str | None = None) -> dict[str, Any]:
+    """Analyse one stack into ``out_dir`` and return its ``experiment.csv`` row.
+
+    Runs in a worker: opens the stack itself from ``path``. Never raises for a bad stack: the
+    row then has ``status = "failed"`` and the error in one line.
+    """
+    from .pipeline import analyse
+
+    t0 = time.perf_counter()
+    row: dict[str, Any] = {"stack": name or Path(path).name, "source": str(path), "status": "ok", "error": "",
+                           "results_dir": Path(out_dir).name}
+    try:
+        res = analyse(path, out=out_dir, settings=from_dict(settings) if settings else None,
+                      overwrite=overwrite, progress=False)
+        row.update(summary_row(res.summary))
+    except ApextrackError as exc:
+        row.update(status="failed", error=exc.one_line())
+    except MemoryError:
+        row.update(status="failed", error=f"{path}: out of memory — analyse it alone or give the workers more memory")
+    except Exception as exc:  # an internal error must not stop the batch
+        row.update(status="failed", error=f"{path}: internal error {type(exc).__name__}: {exc}")
+    row["wall_time_s"] = round(time.perf_counter() - t0, 3)
+    return row
+
+
+# ----------------------------------------------------------------------------------------------
+# the batch
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class BatchResult:
+    """What a batch produced."""
+
+    experiment: pd.DataFrame
+    out: Path
+    dashboard: str | None = None
+    report: Path | None = None
+    failed: list[str] = field(default_factory=list)
+
+    @property
+    def n_failed(self) -> int:
+        return len(self.failed)
+
+
+def experiment_table(rows: list[dict]) -> pd.DataFrame:
+    """``experiment.csv`` as a DataFrame with stable column order and dtypes."""
+    df = pd.DataFrame(rows)
+    for c in EXPERIMENT_COLUMNS:
+        if c not in df:
+            df[c] = None
+    df = df[EXPERIMENT_COLUMNS + [c for c in df.columns if c not in EXPERIMENT_COLUMNS]]
+    for c in _INT_COLUMNS:
+        df[c] = pd.to_numeric(df[c], errors="coerce").astype("Int64")
+    for c in _FLOAT_COLUMNS:
+        df[c] = pd.to_numeric(df[c], errors="coerce").astype("float64")
+    for c in ("stack", "source", "status", "error", "results_dir", "chirality", "parastichy_class", "mode"):
+        df[c] = df[c].astype(object).where(df[c].notna(), None)
+    return df
+
+
+def make_client(scheduler: str | None = None, n_workers: int | None = None, *, dashboard_address: str = ":0"):
+    """A dask client: connected to ``scheduler`` when given, else to a new ``LocalCluster`` of
+    ``n_workers`` processes (default: one per core), one thread each.
+
+    Returns ``(client, cluster)``; ``cluster`` is ``None`` for an existing scheduler. Close both.
+    """
+    from distributed import Client, LocalCluster
+
+    if scheduler:
+        try:
+            client = Client(scheduler, timeout="20s")
+        except (OSError, TimeoutError) as exc:
+            raise InputError(f"cannot connect to the dask scheduler ({exc})", scheduler,
+                             "check the address (e.g. tcp://host:8786) or leave --scheduler out") from None
+        return client, None
+    n = int(n_workers) if n_workers else (os.cpu_count() or 1)
+    if n < 1:
+        raise InputError(f"the number of workers must be at least 1, not {n}")
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=dashboard_address)
+    return Client(cluster), cluster
+
+
+def run_batch(source, out: str | Path, settings: Settings | dict | None = None, *, scheduler: str | None = None,
+              n_workers: int | None = None, client=None, overwrite: bool = False, progress: bool = True,
+              settings_file=None, report: bool = True, **overrides) -> BatchResult:
+    """Analyse many stacks on dask, one task per stack.
+
+    Parameters
+    ----------
+    source : str, Path or list
+        Folder, glob pattern or list of stacks (see :func:`find_stacks`).
+    out : str or Path
+        Output folder: ``<out>/<stack name>/`` per stack, ``experiment.csv`` (one row per
+        stack: summary figures, ``status``, ``error``) and ``experiment_report.html``.
+    settings, settings_file, **overrides
+        Analysis parameters, as for :func:`apextrack.pipeline.analyse` (the same for every stack).
+    scheduler : str, optional
+        Address of a running dask scheduler (``tcp://host:8786``).
+    n_workers : int, optional
+        Worker processes of the local cluster (default: one per core).
+    client : distributed.Client, optional
+        Use this client (and its cluster) instead of creating one.
+    overwrite : bool
+        Replace existing per-stack results folders.
+    progress : bool
+        Print the dashboard address, a progress bar over stacks and one line per failed stack.
+
+    Returns
+    -------
+    BatchResult
+
+    Examples
+    --------
+    >>> if __name__ == "__main__":                                   # doctest: +SKIP
+    ...     res = run_batch("plants/*.tif", "experiment_1", n_workers=2)
+    ...     print(res.experiment[["stack", "status", "divergence_mean_deg"]])
+    """
+    from distributed import as_completed
+
+    from .pipeline import resolve_settings
+
+    s = resolve_settings(settings, settings_file, **overrides)
+    paths = find_stacks(source)
+    names = stack_names(paths)
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    own_client = client is None
+    cluster = None
+    if own_client:
+        client, cluster = make_client(scheduler, n_workers)
+    dashboard = getattr(client, "dashboard_link", None)
+    err = sys.stderr
+    try:
+        if progress:
+            print(f"apextrack: {len(paths)} stack(s) on {len(client.scheduler_info().get('workers', {}))} dask "
+                  f"worker(s); dashboard: {dashboard}", file=err)
+        settings_dict = s.to_dict()
+        futures = {}
+        for i, (p, name) in enumerate(zip(paths, names)):
+            fut = client.submit(analyse_stack_task, str(p.resolve()), str((out / name).resolve()), settings_dict,
+                                overwrite, name, pure=False, key=f"apextrack-stack-{i}-{name}-{time.time_ns()}")
+            futures[fut] = i
+        rows: list[dict | None] = [None] * len(paths)
+        bar = None
+        if progress:
+            from tqdm.auto import tqdm
+
+            bar = tqdm(total=len(paths), desc="stacks", unit="stack", file=err, dynamic_ncols=True)
+        for fut in as_completed(list(futures)):
+            i = futures[fut]
+            try:
+                row = fut.result()
+            except Exception as exc:  # the worker died (memory, crash)
+                row = {"stack": names[i], "source": str(paths[i]), "status": "failed", "results_dir": names[i],
+                       "error": f"{paths[i]}: the worker failed ({type(exc).__name__}: {exc})"}
+            rows[i] = row
+            if bar is not None:
+                bar.update(1)
+            if row["status"] != "ok" and progress:
+                msg = f"apextrack: {names[i]}: failed: {row['error']}"
+                (bar.write(msg, file=err) if bar is not None else print(msg, file=err))
+        if bar is not None:
+            bar.close()
+    finally:
+        if own_client:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    df = experiment_table([r for r in rows if r is not None])
+    write_table(df, out / "experiment.csv")
+    rep = None
+    if report:
+        from .report import write_experiment_report
+
+        rep = write_experiment_report(df, out, title=f"apextrack experiment: {out.name}",
+                                      expected_angle_deg=s.expected_angle_deg)
+    failed = df.loc[df["status"] != "ok", "stack"].tolist()
+    return BatchResult(experiment=df, out=out, dashboard=dashboard, report=rep, failed=failed)
+
+
+def read_experiment(path: str | Path) -> pd.DataFrame:
+    """Read ``experiment.csv`` back with the dtypes :func:`experiment_table` gives."""
+    p = Path(path)
+    if p.is_dir():
+        p = p / "experiment.csv"
+    try:
+        raw = pd.read_csv(p, dtype=str, keep_default_na=False)
+    except FileNotFoundError:
+        from .errors import ResultsError
+
+        raise ResultsError("file is missing", p, "run 'apextrack batch' first") from None
+    rows = raw.replace({"": None}).to_dict("records")
+    return experiment_table(rows)
