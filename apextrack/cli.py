@@ -105,8 +105,85 @@ def _run_settings(args) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------------------------
+# batch
+# ----------------------------------------------------------------------------------------------
+def _add_batch(sub):
+    p = sub.add_parser("batch", help="analyse many stacks on dask",
+                       description="Analyse every stack of a folder (or matching a glob pattern) on dask, one "
+                                   "task per stack: results per stack in OUT/<stack>/, one row per stack in "
+                                   "OUT/experiment.csv and a report comparing the stacks. A failed stack is "
+                                   "reported and the others go on (exit code 3 when any failed).")
+    p.add_argument("source", metavar="FOLDER_OR_GLOB", help="folder of stacks, or a quoted glob such as 'data/*.tif'")
+    p.add_argument("--out", "-o", required=True, help="output folder")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="address of a running dask scheduler (default: a local cluster)")
+    p.add_argument("--workers", type=int, metavar="N", help="worker processes of the local cluster (default: one per core)")
+    p.add_argument("--settings", dest="settings_file", metavar="FILE.toml", help="settings file (the same for every stack)")
+    p.add_argument("--channel", help="reporter channel: name or 0-based index")
+    p.add_argument("--pixel-size", type=float, dest="pixel_size_um", metavar="UM", help="x/y pixel size in µm")
+    p.add_argument("--interval", type=float, dest="interval_h", metavar="HOURS", help="time between frames in hours")
+    p.add_argument("--overwrite", action="store_true", help="replace existing per-stack results folders")
+    p.add_argument("--quiet", "-q", action="store_true", help="no progress bars")
+    p.set_defaults(func=_run_batch)
+
+
+def _run_batch(args) -> int:
+    from .batch import run_batch
+
+    if args.workers is not None and args.workers < 1:
+        raise SettingsError(f"--workers must be at least 1, not {args.workers}")
+    overrides = {k: getattr(args, k) for k in ("channel", "pixel_size_um", "interval_h")}
+    res = run_batch(args.source, args.out, scheduler=args.scheduler, n_workers=args.workers,
+                    overwrite=args.overwrite, progress=not args.quiet, settings_file=args.settings_file, **overrides)
+    n = len(res.experiment)
+    print(f"{n - res.n_failed} of {n} stack(s) analysed; experiment table {res.out / 'experiment.csv'}")
+    if res.report is not None:
+        print(f"  experiment report {res.report}")
+    for name in res.failed:
+        err = res.experiment.loc[res.experiment["stack"] == name, "error"].iloc[0]
+        print(f"  failed: {name}: {err}")
+    return 3 if res.n_failed else 0
+
+
+# ----------------------------------------------------------------------------------------------
+# compare
+# ----------------------------------------------------------------------------------------------
+def _add_compare(sub):
+    p = sub.add_parser("compare", help="compare two results (imaging or simulation) statistically",
+                       description="Compare divergence angles (Watson U², difference of circular means), "
+                                   "plastochrons (Kolmogorov–Smirnov), plastochron ratios, permutation and "
+                                   "co-initiation frequencies (Fisher) and parastichies of two results folders.")
+    p.add_argument("a", help="first results folder (from 'analyse' or 'simulate')")
+    p.add_argument("b", help="second results folder")
+    p.add_argument("--out", "-o", help="folder for comparison.csv and comparison.png (default: print only)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the permutation and bootstrap steps")
+    p.set_defaults(func=_run_compare)
+
+
+def _run_compare(args) -> int:
+    import math
+
+    from .comparison import compare_results, write_comparison
+
+    df = compare_results(args.a, args.b, seed=args.seed)
+
+    def cell(v, nd=3):
+        if isinstance(v, float):
+            return "–" if math.isnan(v) else f"{v:.{nd}g}"
+        return "–" if v is None else str(v)
+
+    print(f"{'quantity':<34} {'A':>12} {'B':>12} {'statistic':>10} {'p':>8}  test")
+    for row in df.itertuples(index=False):
+        print(f"{row.quantity:<34} {cell(row.value_a, 5):>12} {cell(row.value_b, 5):>12} "
+              f"{cell(row.statistic):>10} {cell(row.p_value):>8}  {row.test}")
+    if args.out:
+        paths = write_comparison(df, args.out)
+        print(f"written: {', '.join(str(p) for p in paths)}")
+    return 0
+
+
 #: Sub-command builders, in the order they are listed by --help.
-COMMANDS = [_add_analyse, _add_settings]
+COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare]
 
 
 def build_parser() -> argparse.ArgumentParser:

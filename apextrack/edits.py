@@ -63,7 +63,7 @@ CARRIED_TABLES = ["registration"]
 TRACK_ONLY_COLUMNS = ["track_id", "r_um", "theta_deg"]
 #: Every kind of edit, as written in the log.
 EDIT_ACTIONS = ("delete_detections", "add_detection", "merge_tracks", "split_track",
-                "set_birth_rank", "set_co_initiated", "move_centre", "undo")
+                "set_birth_rank", "set_co_initiated", "move_centre", "replace_tables", "undo")
 
 
 class EditError(AnalysisError):
@@ -431,6 +431,7 @@ class Correction:
     rank_edits: list[dict] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     carried: dict[str, pd.DataFrame] = field(default_factory=dict)
+    saved_to: Path | None = None
     _history: list[_Snapshot] = field(default_factory=list, repr=False)
 
     # -- construction -----------------------------------------------------------------------------
@@ -624,7 +625,8 @@ class Correction:
                                   "save into another folder, or pass overwrite=True to replace the original tables")
         if folder.exists() and not folder.is_dir():
             raise OutputError("exists and is not a folder", folder, "give a folder to save into")
-        if folder.exists() and any(folder.glob("*.csv")) and not overwrite:
+        own = self.saved_to is not None and folder.resolve() == Path(self.saved_to).resolve()
+        if folder.exists() and any(folder.glob("*.csv")) and not (overwrite or own):
             raise OutputError("folder already holds tables", folder,
                               "choose overwrite to replace them, or another folder")
         tables = dict(self.tables)
@@ -636,4 +638,16 @@ class Correction:
                     p.unlink()
         write_result_tables(tables, self.summary, folder)
         write_json(self.run_record(), folder / "run.json")
+        self.saved_to = folder
         return folder
+
+    def replace_tables(self, tracks: pd.DataFrame | None = None, centres: pd.DataFrame | None = None,
+                       what: str = "tables replaced") -> dict:
+        """Take tracks (and detections, which are the tracks without the track columns) and/or
+        centres edited elsewhere (e.g. directly in napari layers), re-measure and log it."""
+        tr = self.tracks if tracks is None else tracks.reset_index(drop=True)
+        det = self.detections if tracks is None else (
+            tr[[c for c in self.detections.columns if c in tr.columns]]
+            .sort_values("detection_id", kind="stable").reset_index(drop=True))
+        cen = self.centres if centres is None else centres.reset_index(drop=True)
+        return self._apply({"action": "replace_tables", "what": what}, tr, det, cen, self.rank_edits)

@@ -69,9 +69,17 @@ def demo_stack_path(name: str = "spiral") -> Path:
     return Path(_demo(name))
 
 
-def _progress(iterable, total: int, desc: str, enabled: bool):
+def _progress(iterable, total: int, desc: str, enabled):
     if not enabled:
         return iterable
+    if callable(enabled):  # a callback progress(done, total, stage), e.g. from the viewer
+        def _report():
+            for i, item in enumerate(iterable):
+                enabled(i, total, desc)
+                yield item
+            enabled(total, total, desc)
+
+        return _report()
     from tqdm.auto import tqdm
 
     return tqdm(iterable, total=total, desc=desc, unit="frame", file=sys.stderr, leave=False,
@@ -291,8 +299,9 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
     settings : Settings or dict, optional
         Parameters (see :mod:`apextrack.settings`); keyword arguments override single values,
         e.g. ``analyse(path, pixel_size_um=0.5)``.
-    progress : bool
-        Show progress bars on stderr.
+    progress : bool or callable
+        Show progress bars on stderr; a callable ``progress(done, total, stage)`` is called
+        instead (once per frame of the image stage).
     write_report : bool, optional
         Write ``report.html`` and ``figures/`` into ``out`` (default: ``settings.report``).
 

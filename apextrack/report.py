@@ -799,7 +799,7 @@ def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, tit
         cells = []
         for _, key, dec, unit in cols:
             v = r.get(key)
-            if isinstance(v, float) and not math.isfinite(v):
+            if v is None or (not isinstance(v, (list, tuple)) and pd.isna(v)):
                 v = None
             if dec == 0 and v is not None:
                 v = int(v)

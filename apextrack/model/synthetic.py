@@ -114,7 +114,7 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
                          psf_fwhm_um=(2.5, 0.5), dome_curvature_um: float = 45.0,
                          drift_um_per_frame=(0.3, -0.2, 0.0), drift_jitter_um: float = 0.0,
                          rotation_deg_per_frame: float = 0.0, tilt_deg: float = 0.0,
-                         tilt_direction_deg: float = 0.0, centre_xy_um=None,
+                         tilt_direction_deg: float = 0.0, centre_xy_um=None, summit_z_um: float | None = None,
                          bleach_per_frame: float = 0.01, missing_frames=(), dim_frames=(),
                          dim_factor: float = 0.35, membrane: bool = False, seed: int = 0,
                          keep_invisible: bool = False) -> SyntheticStack:
@@ -175,6 +175,8 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
         Tilt of the dome axis and the azimuth it leans towards.
     centre_xy_um : (x, y), optional
         Apex centre in frame 0 (default: centre of the field of view).
+    summit_z_um : float, optional
+        Height of the dome summit in frame 0 (default: 1.5 slices below the top slice).
     bleach_per_frame : float
         Fraction of signal lost per frame.
     missing_frames, dim_frames : sequence of int
@@ -212,7 +214,7 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
     psf_z, psf_xy = _pair(psf_fwhm_um, "psf_fwhm_um")
     scene = Scene(shape_zyx=tuple(int(v) for v in shape_zyx), pixel_size_um=pixel_size_um,
                   z_step_um=z_step_um, centre_xy_um=None if centre_xy_um is None else tuple(map(float, centre_xy_um)),
-                  dome_curvature_um=dome_curvature_um, tilt_deg=tilt_deg,
+                  dome_curvature_um=dome_curvature_um, tilt_deg=tilt_deg, summit_z_um=summit_z_um,
                   tilt_direction_deg=tilt_direction_deg,
                   drift_um_per_frame=tuple(float(v) for v in np.ravel(drift_um_per_frame)),
                   drift_jitter_um=drift_jitter_um, rotation_deg_per_frame=rotation_deg_per_frame)
@@ -277,6 +279,7 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
     args["missing_frames"] = [int(v) for v in missing_frames]
     args["dim_frames"] = [int(v) for v in dim_frames]
     args["centre_xy_um"] = list(scene.summit_um[:2])
+    args["summit_z_um"] = scene.summit_um[2]
     args["history_given"] = history is not None
     args["plastochron_ratio"] = math.exp(gamma * plastochron_h)
     return SyntheticStack(data=data, axes="TZCYX" if membrane else "TZYX",

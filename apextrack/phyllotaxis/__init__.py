@@ -228,7 +228,12 @@ def analyse_phyllotaxis(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
 
     # --- pattern mode ---------------------------------------------------------------------------
     co_pairs = d["co_initiated"].to_numpy(bool) if len(d) else np.zeros(0, bool)
-    md = _mode.classify_mode(angles, co_pairs, tolerance=s.mode_tolerance_deg)
+    finite = np.isfinite(angles)
+    lab = (_perm.label_permutations(angles, alpha, s.von_mises_kappa, s.permutation_prior)
+           if finite.sum() >= 2 else None)
+    md = _mode.classify_mode(angles, co_pairs, tolerance=s.mode_tolerance_deg,
+                             permuted_spiral_residuals=None if lab is None else lab["residual_deg"],
+                             expected_angle_deg=alpha)
     summary["mode"] = md["mode"]
     summary["mode_evidence"] = md["evidence"]
     summary["organs_per_node"] = md["organs_per_node"]
@@ -245,15 +250,13 @@ def analyse_phyllotaxis(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
     summary.update({"permutations": None, "n_permutations": None, "n_permuted": None,
                     "unexplained_angles": None, "n_unexplained": None, "corrected_order": None,
                     "corrected_divergence_mean_deg": None, "corrected_divergence_sd_deg": None})
-    finite = np.isfinite(angles)
-    if finite.sum() < 2:
+    if lab is None:
         _reason(summary, "permutations",
                 f"permutation detection needs at least 2 divergence angles (3 primordia); {int(finite.sum())} available")
     elif md["mode"] not in (None, "spiral"):
         _reason(summary, "permutations",
                 f"permutation classes assume a spiral with the expected angle; the pattern mode is {md['mode']}")
     else:
-        lab = _perm.label_permutations(angles, alpha, s.von_mises_kappa, s.permutation_prior)
         ranks = p["birth_rank"].to_numpy(int)
         mult = lab["multiples"]
         d["angle_class"] = [_perm.class_label(int(m)) for m in mult]

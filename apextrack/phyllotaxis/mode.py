@@ -60,7 +60,7 @@ def _fit_whorl(a: np.ndarray, within: np.ndarray, k: int, tol: float):
 
 
 def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
-                  max_k: int = 6) -> dict:
+                  max_k: int = 6, permuted_spiral_residuals=None, expected_angle_deg: float | None = None) -> dict:
     """Classify the pattern mode of divergence angles (generative direction, [0, 360)).
 
     Parameters
@@ -73,6 +73,12 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
         Largest deviation (deg) of an angle from the mode's prediction that counts as fitting.
     max_k : int
         Largest number of organs per node tried.
+    permuted_spiral_residuals : array_like, optional
+        Per angle, the deviation from its class under the most likely permutation labelling of
+        a spiral with the expected angle (see :func:`..permutation.label_permutations`): a
+        spiral whose birth order is locally permuted is still a spiral.
+    expected_angle_deg : float, optional
+        The expected angle used for those residuals (reported as the spiral's angle).
 
     Returns
     -------
@@ -102,6 +108,13 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
     res = circ.wrap180(a - m) if not math.isnan(m) else np.full(a.size, 180.0)
     candidates.append({"k": 1, "kind": "spiral", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
                        "beta": m, "phase": None})
+    if permuted_spiral_residuals is not None:
+        pr = np.asarray(permuted_spiral_residuals, dtype=float)
+        if pr.size == a.size:
+            n_fit = int(np.sum(np.abs(np.where(np.isfinite(pr), pr, 180.0)) <= tolerance))
+            if n_fit > candidates[0]["n_fit"]:
+                candidates[0] = {"k": 1, "kind": "spiral", "n_fit": n_fit, "phase": "permutation-aware",
+                                 "beta": expected_angle_deg if expected_angle_deg is not None else m}
     # distichous: spiral with 180°
     res = circ.wrap180(a - 180.0)
     candidates.append({"k": 1, "kind": "distichous", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
