@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
+import pandas as pd
 from scipy import ndimage as ndi
 
 
@@ -123,37 +126,400 @@ def centre_from_tracks(tracks: "pd.DataFrame", min_frames: int = 3, drift: bool 
             "rms_um": float(np.sqrt(sse / max(len(t) - k - n, 1))), "n_tracks": n}
 
 
+# ----------------------------------------------------------------------------------------------
+# the dome: paraboloid fit, tilt, level (tilt-corrected) coordinates
+# ----------------------------------------------------------------------------------------------
+DOME_KEYS = ["x_um", "y_um", "z_um", "curvature_um", "tilt_deg", "tilt_direction_deg", "up", "rms_um", "n"]
+
+
+def _tilt_vector(tilt_deg: float, tilt_direction_deg: float) -> np.ndarray:
+    """Horizontal image (x, y) components of the unit dome axis."""
+    b, p = math.radians(tilt_deg), math.radians(tilt_direction_deg)
+    return math.sin(b) * np.array([math.cos(p), -math.sin(p)])
+
+
+def _dome_residual(params, x, y, z, up):
+    sx, sy, sz, log_rc, ax, ay = params
+    rc = math.exp(log_rc)
+    a2 = ax * ax + ay * ay
+    if a2 >= 0.99:
+        return np.full(len(x), 1e6)
+    cb = math.sqrt(1.0 - a2)
+    px, py, pz = x - sx, y - sy, up * (z - sz)
+    pa = px * ax + py * ay
+    rho2 = px * px + py * py - pa * pa - 2.0 * cb * pz * pa + a2 * pz * pz
+    return pa + cb * pz + rho2 / (2.0 * rc)
+
+
+def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um: float = 1.0) -> dict | None:
+    """Fit a tilted paraboloid of revolution to points of the dome surface.
+
+    The dome is ``z' = −ρ²/(2·Rc)`` in its own frame (summit at the origin, axis along z'),
+    tilted by ``tilt_deg`` so that its axis leans towards the azimuth ``tilt_direction_deg``
+    (counter-clockwise on the displayed image) and placed with its summit at ``(x, y, z)``.
+    The residual is the algebraic distance along the dome axis; a robust (soft-L1) loss with
+    scale ``robust_um`` keeps primordia bulges out of the fit. Several starting tilts are tried
+    (a tilted paraboloid differs from a shifted one only by its change of curvature away from
+    the summit) and the best fit kept.
+
+    Parameters
+    ----------
+    x_um, y_um, z_um : arrays
+        Surface points (e.g. :meth:`apextrack.projection.HeightMap.points_px` × pixel size).
+    up : {1, -1}
+        Side the dome faces along z.
+    init : dict, optional
+        A previous fit (same keys as the result) to start from.
+
+    Returns
+    -------
+    dict or None
+        :data:`DOME_KEYS`: summit ``x_um, y_um, z_um``, ``curvature_um`` (radius of curvature
+        at the summit), ``tilt_deg``, ``tilt_direction_deg``, ``up``, ``rms_um``, ``n``; None
+        with fewer than 12 points.
+
+    Examples
+    --------
+    >>> yy, xx = np.mgrid[-30:31:3, -30:31:3].astype(float)
+    >>> zz = 50 - (xx ** 2 + yy ** 2) / (2 * 40.0)
+    >>> d = fit_dome(xx.ravel() + 5, yy.ravel(), zz.ravel())
+    >>> round(d["x_um"], 2), round(d["curvature_um"], 1), round(d["tilt_deg"], 2)
+    (5.0, 40.0, 0.0)
+    """
+    from scipy.optimize import least_squares
+
+    x = np.asarray(x_um, float)
+    y = np.asarray(y_um, float)
+    z = np.asarray(z_um, float)
+    ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(z)
+    x, y, z = x[ok], y[ok], z[ok]
+    if len(x) < 12:
+        return None
+    if len(x) > 800:
+        sel = np.linspace(0, len(x) - 1, 800).astype(int)
+        x, y, z = x[sel], y[sel], z[sel]
+    starts = []
+    if init is not None and init.get("curvature_um", 0) > 0:
+        a = _tilt_vector(init["tilt_deg"], init["tilt_direction_deg"])
+        starts.append([init["x_um"], init["y_um"], init["z_um"], math.log(init["curvature_um"]), a[0], a[1]])
+    # quadratic graph fit: top point and curvature
+    mx, my = x.mean(), y.mean()
+    a_mat = np.column_stack([np.ones_like(x), x - mx, y - my, (x - mx) ** 2 + (y - my) ** 2])
+    coef, *_ = np.linalg.lstsq(a_mat, up * z, rcond=None)
+    c3 = coef[3] if coef[3] < -1e-6 else -1e-3
+    tx, ty = mx - coef[1] / (2 * c3), my - coef[2] / (2 * c3)
+    tz = up * (coef[0] - coef[1] ** 2 / (4 * c3) - coef[2] ** 2 / (4 * c3))
+    rc0 = min(max(-1.0 / (2 * c3), 1.0), 1e4)
+    for tilt in ((0.0,) if starts else (0.0, 12.0)):
+        dirs = [0.0] if tilt == 0 else [0.0, 90.0, 180.0, 270.0]
+        for psi in dirs:
+            a = _tilt_vector(tilt, psi)
+            # the summit lies R·tan(tilt) from the top point, towards the tilt direction
+            shift = rc0 * math.tan(math.radians(tilt))
+            u = a / max(np.hypot(*a), 1e-12) if tilt else np.zeros(2)
+            starts.append([tx + shift * u[0], ty + shift * u[1], tz, math.log(rc0), a[0], a[1]])
+    best = None
+    for p0 in starts:
+        try:
+            fit = least_squares(_dome_residual, p0, args=(x, y, z, up), loss="soft_l1", f_scale=robust_um,
+                                x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=200)
+        except ValueError:
+            continue
+        if best is None or fit.cost < best.cost:
+            best = fit
+    if best is None:
+        return None
+    sx, sy, sz, log_rc, ax, ay = best.x
+    sb = min(math.hypot(ax, ay), 0.99)
+    res = _dome_residual(best.x, x, y, z, up)
+    mad = 1.4826 * float(np.median(np.abs(res - np.median(res))))
+    return {"x_um": float(sx), "y_um": float(sy), "z_um": float(sz), "curvature_um": float(math.exp(log_rc)),
+            "tilt_deg": float(math.degrees(math.asin(sb))),
+            "tilt_direction_deg": float(np.mod(math.degrees(math.atan2(-ay, ax)), 360.0)) if sb > 0 else 0.0,
+            "up": int(up), "rms_um": mad, "n": int(len(x))}
+
+
+def dome_height(x_um, y_um, dome: dict) -> np.ndarray:
+    """Height (µm) of the fitted dome surface above image points (NaN where none)."""
+    x = np.asarray(x_um, float)
+    y = np.asarray(y_um, float)
+    a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
+    a2 = float(a @ a)
+    cb = math.sqrt(1 - a2)
+    rc = dome["curvature_um"]
+    px, py = x - dome["x_um"], y - dome["y_um"]
+    pa = px * a[0] + py * a[1]
+    qa = a2 / (2 * rc)
+    qb = cb * (1.0 - pa / rc)
+    qc = pa + (px * px + py * py - pa * pa) / (2 * rc)
+    disc = qb * qb - 4 * qa * qc
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pz = np.where(disc >= 0, -2 * qc / (qb + np.sqrt(np.maximum(disc, 0))), np.nan)
+    return dome["z_um"] + dome.get("up", 1) * pz
+
+
+def level_offsets(dx, dy, dz, tilt_deg: float, tilt_direction_deg: float, up: int = 1):
+    """Project 3D offsets onto the plane perpendicular to the dome axis.
+
+    The offsets ``(dx, dy, dz)`` (µm, image axes; ``dz`` along the slice axis) are turned by
+    the smallest rotation that makes the fitted dome axis vertical; the returned ``(u, v)`` are
+    their components in the image's x and y directions. Azimuths computed from ``(u, v)`` with
+    the usual ``atan2(−v, u)`` are measured in the plane perpendicular to the dome axis.
+
+    Examples
+    --------
+    >>> u, v = level_offsets(10.0, 0.0, 0.0, 0.0, 0.0)
+    >>> float(u), float(v)
+    (10.0, 0.0)
+    """
+    a = _tilt_vector(tilt_deg, tilt_direction_deg)
+    sb2 = float(a @ a)
+    cb = math.sqrt(1.0 - sb2)
+    k = (cb - 1.0) / sb2 if sb2 > 1e-12 else -0.5
+    dx = np.asarray(dx, float)
+    dy = np.asarray(dy, float)
+    pz = up * np.asarray(dz, float)
+    pa = dx * a[0] + dy * a[1]
+    return dx + (k * pa - pz) * a[0], dy + (k * pa - pz) * a[1]
+
+
+def _dome_of(row) -> dict | None:
+    keys = ("dome_x_um", "dome_y_um", "dome_z_um", "curvature_um", "tilt_deg", "tilt_direction_deg")
+    try:
+        vals = [float(row[k]) for k in keys]
+    except (KeyError, TypeError, ValueError):
+        return None
+    if not all(np.isfinite(vals)) or vals[3] <= 0:
+        return None
+    up = int(row["dome_up"]) if "dome_up" in row and np.isfinite(row["dome_up"]) else 1
+    return {"x_um": vals[0], "y_um": vals[1], "z_um": vals[2], "curvature_um": vals[3], "tilt_deg": vals[4],
+            "tilt_direction_deg": vals[5], "up": up}
+
+
+def level_positions(df: "pd.DataFrame", centres: "pd.DataFrame", x="x_um", y="y_um") -> tuple[np.ndarray, np.ndarray]:
+    """Tilt-corrected positions: each point's offset from its frame's dome summit, projected
+    onto the plane perpendicular to the dome axis (z from the fitted dome surface), added back
+    to the summit. Frames without a dome fit keep their image positions."""
+    xs = df[x].to_numpy(float).copy()
+    ys = df[y].to_numpy(float).copy()
+    if "tilt_deg" not in centres.columns:
+        return xs, ys
+    frames = df["frame"].to_numpy()
+    for _, row in centres.iterrows():
+        dome = _dome_of(row)
+        if dome is None:
+            continue
+        m = frames == int(row["frame"])
+        if not m.any():
+            continue
+        z = dome_height(xs[m], ys[m], dome)
+        z = np.where(np.isfinite(z), z, dome["z_um"])
+        u, v = level_offsets(xs[m] - dome["x_um"], ys[m] - dome["y_um"], z - dome["z_um"], dome["tilt_deg"],
+                             dome["tilt_direction_deg"], dome["up"])
+        xs[m], ys[m] = dome["x_um"] + u, dome["y_um"] + v
+    return xs, ys
+
+
+def image_from_level(xl, yl, dome: dict, n_iter: int = 20) -> tuple[float, float]:
+    """Image position on the dome whose tilt-corrected position is ``(xl, yl)`` (inverse of
+    :func:`level_positions` for one frame, by fixed-point iteration)."""
+    x, y = float(xl), float(yl)
+    for _ in range(n_iter):
+        z = float(dome_height(x, y, dome))
+        if not np.isfinite(z):
+            z = dome["z_um"]
+        u, v = level_offsets(x - dome["x_um"], y - dome["y_um"], z - dome["z_um"], dome["tilt_deg"],
+                             dome["tilt_direction_deg"], dome["up"])
+        ex, ey = xl - (dome["x_um"] + float(u)), yl - (dome["y_um"] + float(v))
+        x, y = x + ex, y + ey
+        if math.hypot(ex, ey) < 1e-6:
+            break
+    return x, y
+
+
+def polar_about_centres(tracks: "pd.DataFrame", centres: "pd.DataFrame") -> tuple[np.ndarray, np.ndarray]:
+    """``r_um`` and ``theta_deg`` about each frame's centre, in the plane perpendicular to the
+    fitted dome axis when the centres table carries a dome fit (else in the image plane)."""
+    c = centres.set_index("frame")
+    xc = tracks["frame"].map(c["x_um"]).to_numpy(float)
+    yc = tracks["frame"].map(c["y_um"]).to_numpy(float)
+    xs, ys = level_positions(tracks, centres)
+    cdf = pd.DataFrame({"frame": tracks["frame"].to_numpy(), "x_um": xc, "y_um": yc})
+    xcl, ycl = level_positions(cdf, centres)
+    return np.hypot(xs - xcl, ys - ycl), azimuth_deg(xs, ys, xcl, ycl)
+
+
+# ----------------------------------------------------------------------------------------------
+# the centre that makes the pattern most regular
+# ----------------------------------------------------------------------------------------------
+def _wrap_rad(a):
+    return (np.asarray(a) + np.pi) % (2 * np.pi) - np.pi
+
+
+def centre_from_pattern(tracks: "pd.DataFrame", init_xy, min_primordia: int = 4,
+                        robust: float = 0.15) -> dict | None:
+    """Fit the centre about which successive primordia's azimuths advance most regularly and
+    ln(r) falls most evenly with birth rank.
+
+    An error δ of the centre at radius r biases an azimuth by about (δ/r)·sin(θ − ψ) (Okabe,
+    arXiv:1212.3377) and ln r by about (δ/r)·cos(θ − ψ), so the errors show as irregularity of
+    the successive differences. Birth order is taken from the tracks (first frame, then the
+    farther primordium first); in every frame, for every two primordia of successive rank present
+    in it, the residuals ``wrap(Δθ − α)`` and ``Δln r − m`` are formed; the centre (and the common
+    angle α and log-ratio m) minimise them by robust (soft-L1) least squares.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        ``track_id``, ``frame``, ``x_um``, ``y_um`` (in one frame of reference).
+    init_xy : (x, y)
+        Starting centre (µm).
+
+    Returns
+    -------
+    dict or None
+        ``x_um``, ``y_um``, ``angle_deg`` (α), ``log_ratio`` (m), ``rms_rad``, ``n_pairs``.
+    """
+    from scipy.optimize import least_squares
+
+    if tracks.empty:
+        return None
+    df = tracks[["track_id", "frame", "x_um", "y_um"]].dropna()
+    cx0, cy0 = float(init_xy[0]), float(init_xy[1])
+    first = df.sort_values(["track_id", "frame"], kind="stable").drop_duplicates("track_id")
+    r_first = np.hypot(first["x_um"] - cx0, first["y_um"] - cy0)
+    first = first.assign(_r=r_first.to_numpy())
+    order = first.sort_values(["frame", "_r"], ascending=[True, False], kind="stable")["track_id"].to_numpy()
+    rank = {int(t): i for i, t in enumerate(order)}
+    df = df.assign(rank=df["track_id"].map(rank).to_numpy())
+    pairs_a, pairs_b = [], []
+    for _, g in df.groupby("frame", sort=True):
+        if len(g) < min_primordia:
+            continue
+        g = g.sort_values("rank", kind="stable")
+        rk = g["rank"].to_numpy()
+        idx = g.index.to_numpy()
+        nxt = np.nonzero(np.diff(rk) == 1)[0]
+        pairs_a.extend(idx[nxt])
+        pairs_b.extend(idx[nxt + 1])
+    if len(pairs_a) < 3:
+        return None
+    xa, ya = df.loc[pairs_a, "x_um"].to_numpy(float), df.loc[pairs_a, "y_um"].to_numpy(float)
+    xb, yb = df.loc[pairs_b, "x_um"].to_numpy(float), df.loc[pairs_b, "y_um"].to_numpy(float)
+
+    def diffs(cx, cy):
+        ta = np.arctan2(-(ya - cy), xa - cx)
+        tb = np.arctan2(-(yb - cy), xb - cx)
+        ra = np.hypot(xa - cx, ya - cy)
+        rb = np.hypot(xb - cx, yb - cy)
+        return _wrap_rad(tb - ta), np.log(np.maximum(rb, 1e-6)) - np.log(np.maximum(ra, 1e-6))
+
+    dth, dlr = diffs(cx0, cy0)
+    alpha0 = float(np.angle(np.mean(np.exp(1j * dth))))
+    m0 = float(np.median(dlr))
+
+    def resid(p):
+        dt, dl = diffs(p[0], p[1])
+        return np.concatenate([_wrap_rad(dt - p[2]), dl - p[3]])
+
+    fit = least_squares(resid, [cx0, cy0, alpha0, m0], loss="soft_l1", f_scale=robust,
+                        x_scale=[5.0, 5.0, 0.1, 0.05])
+    res = resid(fit.x)
+    return {"x_um": float(fit.x[0]), "y_um": float(fit.x[1]),
+            "angle_deg": float(np.degrees(fit.x[2])), "log_ratio": float(fit.x[3]),
+            "rms_rad": float(np.sqrt(np.mean(res ** 2))), "n_pairs": int(len(pairs_a))}
+
+
 def choose_centres(tracks: "pd.DataFrame", dome_centres: "pd.DataFrame", method: str = "auto",
                    user_centre_um=None) -> tuple["pd.DataFrame", dict]:
-    """The apex centre of every frame, by the chosen method.
+    """The apex centre of every frame, by the chosen method, with every estimate reported.
 
-    ``user``: the given point in every frame. ``dome``: the per-frame centre of the dome in the
-    top view (``dome_centres``). ``motion``: :func:`centre_from_tracks` (drifting linearly).
-    ``auto``: ``motion`` when at least three tracks allow it, else ``dome``.
+    Estimates (all in the tracks' frame of reference):
 
-    Returns the centres table (``frame``, ``time_h``, ``x_um``, ``y_um``, ``method``) and a dict
-    describing the fit.
+    - ``dome``: the summit of the paraboloid fitted to the dome surface of each frame (columns
+      ``dome_x_um``/``dome_y_um`` of ``dome_centres``), or, for 2D stacks, the centre of the
+      dome in the top view (``view_x_um``/``view_y_um``, also the fallback);
+    - ``motion``: :func:`centre_from_tracks` (drifting linearly);
+    - ``pattern``: :func:`centre_from_pattern`, independent of the first two;
+    - ``user``: the given point in every frame.
+
+    ``auto`` uses ``motion`` when at least three tracks allow it, else ``pattern``, else
+    ``dome``. When ``dome_centres`` carries a dome fit (``tilt_deg`` …), motion and pattern are
+    fitted on tilt-corrected positions (:func:`level_positions`) and mapped back to the image.
+
+    Returns the centres table (``frame``, ``time_h``, ``x_um``, ``y_um``, ``method`` and the
+    per-method columns ``dome_*``, ``view_*``, ``motion_*``, ``pattern_*``) and a dict
+    describing the fits and which estimate was used.
     """
     import pandas as pd
 
-    out = dome_centres[["frame", "time_h"]].copy()
-    info: dict = {"requested": method}
-    if user_centre_um is not None:
-        out["x_um"], out["y_um"], out["method"] = float(user_centre_um[0]), float(user_centre_um[1]), "user"
-        info["used"] = "user"
-        return out, info
-    fit = None
-    if method in ("auto", "motion"):
-        fit = centre_from_tracks(tracks)
-        if fit is not None:
-            out["x_um"] = fit["x_um"] + fit["drift_x_um_per_h"] * out["time_h"]
-            out["y_um"] = fit["y_um"] + fit["drift_y_um_per_h"] * out["time_h"]
-            out["method"] = "motion"
-            info.update({"used": "motion", **{f"motion_{k}": v for k, v in fit.items()}})
-            return out, info
+    out = dome_centres.copy().reset_index(drop=True)
+    if "view_x_um" not in out.columns:
+        out["view_x_um"], out["view_y_um"] = out["x_um"].to_numpy(float), out["y_um"].to_numpy(float)
+    has_dome = "dome_x_um" in out.columns and np.isfinite(out["dome_x_um"].to_numpy(float)).any()
+    if has_dome:
+        dx = out["dome_x_um"].to_numpy(float)
+        dy = out["dome_y_um"].to_numpy(float)
+        ok = np.isfinite(dx) & np.isfinite(dy)
+        dome_x = np.where(ok, dx, out["view_x_um"].to_numpy(float))
+        dome_y = np.where(ok, dy, out["view_y_um"].to_numpy(float))
+    else:
+        dome_x, dome_y = out["view_x_um"].to_numpy(float), out["view_y_um"].to_numpy(float)
+    info: dict = {"requested": method, "tilt_corrected": bool(has_dome and "tilt_deg" in out.columns)}
+    if has_dome:
+        info["dome_tilt_deg_median"] = float(np.nanmedian(out["tilt_deg"]))
+    # level (tilt-corrected) track positions
+    lv = tracks.copy()
+    if not lv.empty and info["tilt_corrected"]:
+        lx, ly = level_positions(lv, out)
+        lv["x_um"], lv["y_um"] = lx, ly
+    domes = {int(r["frame"]): _dome_of(r) for _, r in out.iterrows()} if info["tilt_corrected"] else {}
+
+    def to_image(frame, xl, yl):
+        d = domes.get(int(frame))
+        return image_from_level(xl, yl, d) if d is not None else (xl, yl)
+
+    motion = centre_from_tracks(lv) if not lv.empty else None
+    if motion is not None:
+        mx = motion["x_um"] + motion["drift_x_um_per_h"] * out["time_h"].to_numpy(float)
+        my = motion["y_um"] + motion["drift_y_um_per_h"] * out["time_h"].to_numpy(float)
+        img = [to_image(f, a, b) for f, a, b in zip(out["frame"], mx, my)]
+        out["motion_x_um"] = [p[0] for p in img]
+        out["motion_y_um"] = [p[1] for p in img]
+        info.update({f"motion_{k}": v for k, v in motion.items()})
+    else:
+        out["motion_x_um"] = out["motion_y_um"] = np.nan
         info["motion_note"] = "fewer than 3 tracks of 3 frames: the centre could not be fitted from motion"
-    out["x_um"] = dome_centres["x_um"].to_numpy(float)
-    out["y_um"] = dome_centres["y_um"].to_numpy(float)
-    out["method"] = "dome"
-    info["used"] = "dome"
-    return pd.DataFrame(out), info
+    init = (motion["x_um"], motion["y_um"]) if motion is not None else (float(np.nanmedian(dome_x)), float(np.nanmedian(dome_y)))
+    pattern = centre_from_pattern(lv, init) if not lv.empty else None
+    if pattern is not None:
+        img = [to_image(f, pattern["x_um"], pattern["y_um"]) for f in out["frame"]]
+        out["pattern_x_um"] = [p[0] for p in img]
+        out["pattern_y_um"] = [p[1] for p in img]
+        info.update({f"pattern_{k}": v for k, v in pattern.items()})
+    else:
+        out["pattern_x_um"] = out["pattern_y_um"] = np.nan
+        info["pattern_note"] = "too few primordia of successive rank seen together"
+    out["dome_x_um"], out["dome_y_um"] = dome_x, dome_y
+    if user_centre_um is not None:
+        used = "user"
+        out["x_um"], out["y_um"] = float(user_centre_um[0]), float(user_centre_um[1])
+    else:
+        used = {"auto": "motion" if motion is not None else ("pattern" if pattern is not None else "dome")}.get(method, method)
+        if used == "motion" and motion is None:
+            used = "dome"
+        if used == "pattern" and pattern is None:
+            used = "dome"
+        if used == "view":
+            out["x_um"], out["y_um"] = out["view_x_um"], out["view_y_um"]
+        else:
+            out["x_um"], out["y_um"] = out[f"{used}_x_um"], out[f"{used}_y_um"]
+    out["method"] = used
+    info["used"] = used
+    # agreement between the estimates (mean distance over frames)
+    for a, b in (("motion", "pattern"), ("motion", "dome"), ("pattern", "dome")):
+        d = np.hypot(out[f"{a}_x_um"] - out[f"{b}_x_um"], out[f"{a}_y_um"] - out[f"{b}_y_um"])
+        if np.isfinite(d).any():
+            info[f"distance_{a}_{b}_um"] = float(np.nanmean(d))
+    first = ["frame", "time_h", "x_um", "y_um", "method"]
+    return pd.DataFrame(out[first + [c for c in out.columns if c not in first]]), info

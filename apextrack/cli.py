@@ -183,7 +183,32 @@ def _run_compare(args) -> int:
 
 
 #: Sub-command builders, in the order they are listed by --help.
-COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare]
+# ----------------------------------------------------------------------------------------------
+# view
+# ----------------------------------------------------------------------------------------------
+def _add_view(sub):
+    p = sub.add_parser("view", help="review a result or a stack in napari",
+                       description="Open napari with a results folder (image, tracks, primordia, "
+                                   "angles, parastichies and the review widget to correct them) or "
+                                   "a stack (with the run widget). No path: the run widget on the demo stack.")
+    p.add_argument("path", nargs="?", help="results folder or stack file")
+    p.set_defaults(func=_run_view)
+
+
+def _run_view(args) -> int:
+    from .errors import OutputError
+
+    try:
+        import napari  # noqa: F401
+    except ImportError:
+        raise OutputError("napari is not installed", hint="pip install 'apextrack[viewer]'") from None
+    from .viewer.app import launch
+
+    launch(args.path)
+    return 0
+
+
+COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_view]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -447,6 +447,7 @@ class Correction:
             raise ResultsError("results folder has no centres.csv (the apex centre of each frame)",
                                loaded.get("folder"), "re-run the analysis with this apextrack version")
         carried = {name: loaded[name] for name in CARRIED_TABLES if name in loaded}
+        tables.update(carried)
         corr = run.get("corrections") or {}
         return cls(tables=tables, summary=summary, run=run, settings=settings,
                    source=Path(loaded["folder"]) if loaded.get("folder") else None,

@@ -25,7 +25,7 @@ from .apex import centre_from_view, choose_centres
 from .birth import order_primordia
 from .detect import detect_blobs, detections_to_um, scales_px
 from .errors import AnalysisError, OutputError
-from .link import add_polar, link_detections
+from .link import add_polar, link_detections, link_tracks
 from .projection import top_view
 from .results import write_result_tables
 from .settings import Settings, from_dict
@@ -124,12 +124,27 @@ class _Staging:
     def __init__(self, out: Path):
         self.out = Path(out)
         self.out.parent.mkdir(parents=True, exist_ok=True)
-        self.path = self.out.parent / f".{self.out.name}.partial-{os.getpid()}-{time.time_ns()}"
+        host = platform.node().replace("-", "_") or "host"
+        self._sweep(host)
+        self.path = self.out.parent / f".{self.out.name}.partial-{host}-{os.getpid()}-{time.time_ns()}"
         try:
             self.path.mkdir()
         except OSError as exc:
             raise OutputError(f"cannot create the results folder ({exc.strerror})", self.out.parent,
                               "choose another output folder") from None
+
+    def _sweep(self, host: str) -> None:
+        """Remove staging folders left by killed runs (this host, process no longer running)."""
+        for left in self.out.parent.glob(f".{self.out.name}.partial-{host}-*"):
+            pid = left.name.rsplit("-", 2)[-2]
+            if not pid.isdigit() or int(pid) == os.getpid():
+                continue
+            try:
+                os.kill(int(pid), 0)
+            except ProcessLookupError:
+                shutil.rmtree(left, ignore_errors=True)
+            except (OSError, ValueError):
+                pass
 
     def commit(self) -> None:
         old = None
@@ -189,13 +204,29 @@ def _input_checksums(stack: Stack) -> dict[str, str]:
 
 
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
-                on_frame: Callable[[int, np.ndarray], None] | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Project, locate the apex and detect primordia frame by frame (streaming).
+                on_frame: Callable[[int, np.ndarray], None] | None = None,
+                extra: dict | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Project, register, fit the dome and detect primordia frame by frame (streaming).
+
+    Per frame: the dome surface height map (membrane channel when given, else the reporter;
+    3D stacks), the top view (``max`` or ``surface`` shell projection), the apex region, the
+    detections (2D on the top view, or 3D with ``detect_3d``), the tilted-paraboloid fit of the
+    dome (summit, curvature, tilt), and the registration to the previous frame
+    (:class:`apextrack.register.Registrar`). Registration is applied to coordinates: ``x_um``,
+    ``y_um`` of detections and every centre estimate are in the frame of reference of the
+    first frame; ``x_px``/``y_px`` stay the pixel positions in the frame's own top view.
 
     Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame
-    (e.g. to write the top views) so that no more than one frame is held in memory.
+    (e.g. to write the top views) so that no more than one frame is held in memory. When
+    ``extra`` is a dict it receives the ``registration`` table.
     """
+    from .apex import _tilt_vector, fit_dome
+    from .detect import apex_region, detect_blobs_3d
+    from .projection import shell_projection, surface_height
+    from .register import Registrar
+
     px = stack.pixel_size_um[0]
+    dz = stack.pixel_size_um[2] if stack.has_z else math.nan
     ny, nx = stack.shape_yx
     if s.centre_um is not None:
         cx, cy = s.centre_um
@@ -205,23 +236,101 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
                                 f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
                                 "give --centre X,Y in µm inside the image")
+    if s.membrane_channel is not None:
+        stack.channel_index(s.membrane_channel)  # fail early on a bad channel
     sigmas = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, px, s.n_scales)
-    det_parts, centre_rows = [], []
+    reg = Registrar((ny, nx), px, match_tol_px=max(s.link_search_um / px, 3.0), enabled=bool(s.register))
+    det_parts, centre_rows, blank = [], [], []
     times = stack.times_h()
+    side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
+    dome_prev = None
     for t in _progress(range(stack.n_frames), stack.n_frames, "frames", progress):
         vol = stack.frame(t, s.channel)
-        view = top_view(vol, s.projection)
+        if vol.size and float(vol.min()) == float(vol.max()):
+            blank.append(t)
+        hm = None
+        if vol.ndim == 3 and not (vol.size and float(vol.min()) == float(vol.max())):
+            surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel)
+            hm = surface_height(surf, dz, px, up=side)
+            if isinstance(side, str) and side == "auto":
+                side = hm.up  # decided once, from the first frame with signal
+        if s.projection == "surface" and hm is not None:
+            view = shell_projection(vol, hm, dz, s.shell_depth_um)
+        else:
+            view = top_view(vol, "max")
         if on_frame is not None:
             on_frame(t, view)
-        if s.centre_um is not None:
-            cx_um, cy_um, how = float(s.centre_um[0]), float(s.centre_um[1]), "user"
+        rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
+        if s.detect_3d and vol.ndim == 3:
+            blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
+            if not blobs.empty:
+                inside = np.hypot(blobs["x_px"] - rx, blobs["y_px"] - ry) <= s.apex_region_factor * rr
+                blobs = blobs[inside].reset_index(drop=True)
+                blobs["integrated_intensity"] = np.nan
         else:
-            cx, cy = centre_from_view(view)
-            cx_um, cy_um, how = cx * px, cy * px, "dome"
-        centre_rows.append((t, float(times[t]), cx_um, cy_um, how))
-        blobs = detect_blobs(view, sigmas, min_snr=s.min_snr)
-        det_parts.append(detections_to_um(blobs, t, float(times[t]), px))
-    centres = pd.DataFrame(centre_rows, columns=["frame", "time_h", "x_um", "y_um", "method"])
+            blobs = detect_blobs(view, sigmas, min_snr=s.min_snr, region=(rx, ry, rr),
+                                 region_factor=s.apex_region_factor)
+        det = detections_to_um(blobs, t, float(times[t]), px)
+        dome = None
+        if hm is not None:
+            hx, hy, hz = hm.points_px()
+            if s.membrane_channel is None and len(blobs):
+                # primordia bulge out of the reporter's surface: leave their cells out of the fit
+                from scipy.spatial import cKDTree
+
+                dist, idx = cKDTree(blobs[["x_px", "y_px"]].to_numpy(float)).query(np.column_stack([hx, hy]))
+                far = dist > 1.5 * blobs["radius_px"].to_numpy(float)[idx]
+                hx, hy, hz = hx[far], hy[far], hz[far]
+            dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=dome_prev, robust_um=max(0.5, 0.25 * dz))
+            dome_prev = dome
+            if "z_px" in det.columns:
+                det["z_um"] = det.pop("z_px").to_numpy(float) * dz
+            else:
+                det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+        apex_px = (dome["x_um"] / px, dome["y_um"] / px) if dome is not None else (rx, ry)
+        row = reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
+        # coordinates into the first frame's frame of reference
+        xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+        det["x_um"], det["y_um"] = xr * px, yr * px
+        vx, vy = reg.to_reference(rx, ry)
+        crow = {"frame": t, "time_h": float(times[t]), "view_x_um": float(vx) * px, "view_y_um": float(vy) * px,
+                "region_radius_um": rr * px}
+        if dome is not None:
+            sx, sy = reg.to_reference(dome["x_um"] / px, dome["y_um"] / px)
+            a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
+            crow.update({"dome_x_um": float(sx) * px, "dome_y_um": float(sy) * px, "dome_z_um": dome["z_um"],
+                         "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
+                         "_ax": a[0], "_ay": a[1], "_rot": reg.current_rotation_deg})
+        centre_rows.append(crow)
+        det_parts.append(det)
+    centres = pd.DataFrame(centre_rows)
+    if "_ax" in centres.columns:
+        # the tilt is a property of the specimen: a running median over 5 frames steadies it;
+        # directions are turned into the first frame's orientation
+        rot = np.radians(centres["_rot"].to_numpy(float))
+        ax, ay = centres["_ax"].to_numpy(float), centres["_ay"].to_numpy(float)
+        c, sn = np.cos(rot), np.sin(rot)
+        # inverse of the display-counter-clockwise rotation applied to image (x, y) vectors
+        bx, by = c * ax - sn * ay, sn * ax + c * ay
+        bx = pd.Series(bx).rolling(5, center=True, min_periods=1).median().to_numpy()
+        by = pd.Series(by).rolling(5, center=True, min_periods=1).median().to_numpy()
+        sb = np.clip(np.hypot(bx, by), 0, 0.99)
+        centres["measured_tilt_deg"] = np.degrees(np.arcsin(sb))
+        centres["tilt_deg"] = centres["measured_tilt_deg"] if s.tilt_correction else 0.0
+        centres["tilt_direction_deg"] = np.mod(np.degrees(np.arctan2(-by, bx)), 360.0)
+        centres = centres.drop(columns=["_ax", "_ay", "_rot"])
+    if s.centre_um is not None:
+        centres["x_um"], centres["y_um"], centres["method"] = float(s.centre_um[0]), float(s.centre_um[1]), "user"
+    else:
+        use_dome = "dome_x_um" in centres.columns
+        centres["x_um"] = centres["dome_x_um"].fillna(centres["view_x_um"]) if use_dome else centres["view_x_um"]
+        centres["y_um"] = centres["dome_y_um"].fillna(centres["view_y_um"]) if use_dome else centres["view_y_um"]
+        centres["method"] = "dome"
+    first = ["frame", "time_h", "x_um", "y_um", "method"]
+    centres = centres[first + [c for c in centres.columns if c not in first]]
+    centres.attrs["blank_frames"] = blank  # frames whose pixels all hold one value
+    if extra is not None:
+        extra["registration"] = reg.table()
     detections = pd.concat(det_parts, ignore_index=True) if det_parts else pd.DataFrame()
     detections.insert(0, "detection_id", np.arange(len(detections), dtype=np.int64))
     return detections, centres
@@ -258,7 +367,10 @@ def measure_tracks(tracks: pd.DataFrame, centres: pd.DataFrame, settings: Settin
     """
     tracks = add_polar(tracks, centres)
     if primordia is None:
-        primordia, birth_info = order_primordia(tracks, settings.co_initiation_h, settings.min_track_frames)
+        centre_sd = (float(np.nanmedian(centres["centre_sd_um"])) if "centre_sd_um" in centres
+                     and centres["centre_sd_um"].notna().any() else 0.0)
+        primordia, birth_info = order_primordia(tracks, settings.co_initiation_h, settings.min_track_frames,
+                                                centre_sd_um=centre_sd)
     else:
         primordia = primordia.sort_values("birth_rank", kind="stable").reset_index(drop=True)
         birth_info = {"method": "birth ranks set by hand"}
@@ -347,19 +459,41 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                 writer.write(t, view)
 
         t0 = time.perf_counter()
+        image_extra: dict = {}
         try:
-            detections, centres = image_stage(stack, s, progress, on_frame)
+            detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra)
         finally:
             if writer is not None:
                 writer.close()
         lap("image", t0)
+        blank = list(centres.attrs.get("blank_frames", []))
+        if blank and len(blank) == stack.n_frames:
+            raise AnalysisError("every frame is uniform (all pixels one value): the image holds no signal",
+                                stack.path, "check the channel (--channel) and that the file holds the recorded images")
+        if blank:
+            msg = (f"frame(s) {', '.join(map(str, blank))} of {stack.n_frames} are blank (all pixels one value): "
+                   f"no primordia detected there; tracks are linked across the gap when it is at most "
+                   f"{s.link_memory} frame(s)")
+            stack_warnings.append(msg)
+            if progress:
+                print(f"apextrack: warning: {stack.name}: {msg}", file=sys.stderr)
         if detections.empty:
             raise AnalysisError("no primordia found in any frame", stack.path,
                                 "check the channel, the primordium diameter range and --min-snr")
 
         t0 = time.perf_counter()
-        tracks = link_detections(detections, s.link_search_um, s.link_memory)
+        tracks, link_info = link_tracks(detections, s.link_search_um, s.link_memory, jump_um=s.link_jump_um,
+                                        min_track_frames=s.min_track_frames, growth_aware=s.link_growth_aware)
+        motion = link_info.pop("model", None)
         centres, centre_info = choose_centres(tracks, centres, s.centre_method, s.centre_um)
+        if (s.centre_um is None and s.centre_method in ("auto", "motion") and motion is not None
+                and motion.n_new >= 3):
+            # the linking's motion fit pins the centre with the rim on which new primordia appear
+            mc = motion.centres_table(centres["frame"], centres["time_h"])
+            centres = centres.assign(x_um=mc["x_um"].to_numpy(), y_um=mc["y_um"].to_numpy(),
+                                     method="motion+rim", centre_sd_um=mc["centre_sd_um"].to_numpy())
+            centre_info = {"requested": s.centre_method, "used": "motion+rim",
+                           "motion_fit": link_info.get("motion"), "without_rim": centre_info}
         lap("link", t0)
 
         t0 = time.perf_counter()
@@ -373,6 +507,10 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                    "interval_h": stack.interval_h}
         summary = make_summary(measured, detections, s, context)
         summary["centre"] = centre_info
+        summary["linking"] = link_info
+        summary["blank_frames"] = blank
+        if blank:
+            summary.setdefault("notes", []).append(msg)
         run = {
             "package": "apextrack",
             "version": __version__,
@@ -391,6 +529,8 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         result = AnalysisResult(detections=detections, tracks=tracks, primordia=primordia,
                                 divergence=phyl.divergence, centres=centres, summary=summary, run=run,
                                 settings=s, parastichies=getattr(phyl, "parastichies", pd.DataFrame()))
+        if "registration" in image_extra:
+            result.extra_tables["registration"] = image_extra["registration"]
         if staging is not None:
             t0 = time.perf_counter()
             write_results(result, staging.path)

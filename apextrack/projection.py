@@ -1,12 +1,24 @@
-"""Top views: one 2D image per timepoint from a 3D stack.
+"""Top views: one 2D image per timepoint from a 3D stack, and the dome surface height map.
 
-``max``: maximum-intensity projection along z. Further projections (a shell below the dome
-surface) live here too.
+``max``: maximum-intensity projection along z.
+
+``surface``: a surface-shell projection. The dome surface is found per (x, y) column as the
+outermost significant intensity peak along z (seen from the side the dome faces), on a
+laterally binned and smoothed copy of the volume (the surface is smooth; binning makes this
+cheap), interpolated to subslice precision by a Gaussian (log-parabola) through the peak
+slice and its neighbours, and resampled to full resolution. The top view is then the maximum
+of the signal within a shell from the surface down to ``shell_depth_um`` below it, which keeps
+deep autofluorescence out. The height map (µm, ``z = slice × z step``) is kept so that the z
+of every primordium can be reported and the dome fitted (:mod:`apextrack.apex`).
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
+from scipy import ndimage as ndi
 
 
 def max_projection(volume: np.ndarray) -> np.ndarray:
@@ -26,15 +38,208 @@ def max_projection(volume: np.ndarray) -> np.ndarray:
     return volume.max(axis=0).astype(np.float32, copy=False)
 
 
+@dataclass
+class HeightMap:
+    """Dome surface height on a coarse grid.
+
+    Attributes
+    ----------
+    z_um : (Yc, Xc) array
+        Surface height (µm, slice index × z step); NaN where no surface was found.
+    bin_px : int
+        Size of a coarse cell in pixels; cell ``(i, j)`` is centred on pixel
+        ``(i·bin + (bin−1)/2, j·bin + (bin−1)/2)``.
+    up : int
+        +1 when the dome faces increasing z (summit at high slice index), −1 otherwise.
+    shape_yx : (int, int)
+        Full-resolution frame size.
+    """
+
+    z_um: np.ndarray
+    bin_px: int
+    up: int
+    shape_yx: tuple[int, int]
+
+    def points_px(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Valid cells as full-resolution pixel coordinates ``(x, y)`` and heights ``z_um``."""
+        iy, ix = np.nonzero(np.isfinite(self.z_um))
+        off = (self.bin_px - 1) / 2.0
+        return ix * self.bin_px + off, iy * self.bin_px + off, self.z_um[iy, ix]
+
+    def at(self, x_px, y_px) -> np.ndarray:
+        """Height (µm) at full-resolution pixel positions (bilinear; NaN where unknown)."""
+        off = (self.bin_px - 1) / 2.0
+        gy = (np.asarray(y_px, float) - off) / self.bin_px
+        gx = (np.asarray(x_px, float) - off) / self.bin_px
+        z = np.where(np.isfinite(self.z_um), self.z_um, 0.0)
+        w = np.isfinite(self.z_um).astype(float)
+        num = ndi.map_coordinates(z * w, [gy, gx], order=1, mode="nearest")
+        den = ndi.map_coordinates(w, [gy, gx], order=1, mode="nearest")
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(den > 0.5, num / np.maximum(den, 1e-9), np.nan)
+
+    def full(self) -> np.ndarray:
+        """The height map resampled to every pixel (µm; NaN where unknown)."""
+        ny, nx = self.shape_yx
+        yy, xx = np.mgrid[0:ny, 0:nx]
+        return self.at(xx.ravel(), yy.ravel()).reshape(ny, nx).astype(np.float32)
+
+
+def _bin(volume: np.ndarray, b: int) -> np.ndarray:
+    nz, ny, nx = volume.shape
+    my, mx = (ny // b) * b, (nx // b) * b
+    v = volume[:, :my, :mx]
+    if b > 1:
+        v = v.reshape(nz, my // b, b, mx // b, b).mean(axis=(2, 4))
+    return v
+
+
+def dome_side(binned: np.ndarray) -> int:
+    """+1 if the dome bulges towards increasing slice index, −1 otherwise.
+
+    The intensity-weighted mean slice of every column is fitted by ``a + b·x + c·y + d·ρ²``;
+    a cap (``d < 0``) faces increasing z.
+    """
+    nz = binned.shape[0]
+    bg = np.percentile(binned, 5)
+    w = np.clip(binned - bg, 0, None)
+    tot = w.sum(axis=0)
+    ok = tot > np.percentile(tot, 25)
+    if ok.sum() < 6:
+        return 1
+    zc = (w * np.arange(nz)[:, None, None]).sum(axis=0)[ok] / tot[ok]
+    iy, ix = np.nonzero(ok)
+    a = np.column_stack([np.ones_like(ix, float), ix, iy, (ix - ix.mean()) ** 2 + (iy - iy.mean()) ** 2])
+    coef, *_ = np.linalg.lstsq(a, zc, rcond=None)
+    return 1 if coef[3] <= 0 else -1
+
+
+def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
+                   cell_um: float = 3.0, up: str | int = "auto", rel_level: float = 0.5) -> HeightMap:
+    """Find the dome surface: the outermost significant z peak of every (binned) column.
+
+    Parameters
+    ----------
+    volume : (Z, Y, X) array
+    z_step_um, pixel_size_um : float
+    cell_um : float
+        Lateral size of the coarse cells (µm); the surface is assumed smooth at that scale.
+    up : "auto", "+z", "-z", 1 or -1
+        Side the dome faces; ``auto`` decides from the data (:func:`dome_side`).
+    rel_level : float
+        A peak counts when it rises above ``rel_level`` of the column's range over the
+        volume's background.
+
+    Returns
+    -------
+    HeightMap
+
+    Examples
+    --------
+    >>> zz = np.arange(10)[:, None, None] * 2.0
+    >>> v = np.exp(-0.5 * ((zz - 11.0) / 1.5) ** 2) * np.ones((10, 16, 16))
+    >>> hm = surface_height(v, 2.0, 1.0, cell_um=4)
+    >>> round(float(np.nanmean(hm.z_um)), 2)
+    11.0
+    """
+    vol = np.asarray(volume, np.float32)
+    if vol.ndim != 3:
+        raise ValueError(f"expected a (Z, Y, X) volume, got shape {vol.shape}")
+    nz, ny, nx = vol.shape
+    b = max(1, int(round(cell_um / pixel_size_um)))
+    b = min(b, max(1, min(ny, nx) // 4))
+    v = _bin(vol, b)
+    v = ndi.gaussian_filter(v, (0, 1.0, 1.0), mode="nearest")
+    if up in ("auto", None):
+        side = dome_side(v)
+    elif up in ("+z", 1):
+        side = 1
+    elif up in ("-z", -1):
+        side = -1
+    else:
+        raise ValueError(f"up must be 'auto', '+z' or '-z', not {up!r}")
+    p = v if side == 1 else v[::-1]
+    bg = float(np.percentile(p, 5))
+    top = p.max(axis=0)
+    noise = 1.4826 * float(np.median(np.abs(p - np.median(p)))) + 1e-9
+    thr = bg + rel_level * (top - bg)
+    # peaks: not lower than either neighbour along z (edges count as one-sided peaks)
+    up_n = np.concatenate([p[1:], np.full((1,) + p.shape[1:], -np.inf, np.float32)])
+    dn_n = np.concatenate([np.full((1,) + p.shape[1:], -np.inf, np.float32), p[:-1]])
+    peak = (p >= up_n) & (p >= dn_n) & (p >= thr[None])
+    # outermost = highest index on the dome's side
+    idx = (nz - 1) - np.argmax(peak[::-1], axis=0)
+    found = peak.any(axis=0) & ((top - bg) > 3 * noise)
+    k = np.clip(idx, 1, max(nz - 2, 1)) if nz >= 3 else idx
+    iy, ix = np.indices(idx.shape)
+    z = idx.astype(float)
+    if nz >= 3:
+        a = p[k - 1, iy, ix] - bg
+        c0 = p[k, iy, ix] - bg
+        c = p[k + 1, iy, ix] - bg
+        pos = (a > 0) & (c0 > 0) & (c > 0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            la, lb, lc = np.log(np.maximum(a, 1e-12)), np.log(np.maximum(c0, 1e-12)), np.log(np.maximum(c, 1e-12))
+            den = la - 2 * lb + lc
+            off_log = np.where(den < 0, 0.5 * (la - lc) / den, 0.0)
+            den2 = a - 2 * c0 + c
+            off_lin = np.where(den2 < 0, 0.5 * (a - c) / den2, 0.0)
+        off = np.where(pos, off_log, off_lin)
+        off = np.clip(np.nan_to_num(off), -1.0, 1.0)
+        interior = (idx >= 1) & (idx <= nz - 2)
+        z = np.where(interior, k + off, idx)
+    if side == -1:
+        z = (nz - 1) - z
+    z_um = np.where(found, z * z_step_um, np.nan)
+    return HeightMap(z_um=z_um.astype(float), bin_px=b, up=side, shape_yx=(ny, nx))
+
+
+def shell_projection(volume: np.ndarray, height: HeightMap, z_step_um: float, shell_depth_um: float) -> np.ndarray:
+    """Maximum of the signal between the dome surface and ``shell_depth_um`` below it.
+
+    Columns without a surface fall back to the maximum projection. Half a z step above the
+    surface is included, so the surface slice itself always counts.
+    """
+    vol = np.asarray(volume, np.float32)
+    nz = vol.shape[0]
+    h = height.full() / z_step_um  # in slices
+    zc = np.arange(nz, dtype=np.float32)[:, None, None]
+    depth = shell_depth_um / z_step_um
+    margin = 0.5
+    if height.up == 1:
+        inside = (zc >= h[None] - depth - margin) & (zc <= h[None] + margin)
+    else:
+        inside = (zc <= h[None] + depth + margin) & (zc >= h[None] - margin)
+    none = ~np.isfinite(h)
+    proj = np.where(inside, vol, -np.inf).max(axis=0)
+    empty = none | ~np.isfinite(proj)
+    if empty.any():
+        proj = np.where(empty, vol.max(axis=0), proj)
+    return proj.astype(np.float32)
+
+
+def surface_projection(volume: np.ndarray, z_step_um: float = 1.0, pixel_size_um: float = 1.0,
+                       shell_depth_um: float = 6.0, up: str | int = "auto",
+                       cell_um: float = 3.0) -> tuple[np.ndarray, HeightMap]:
+    """Surface-shell top view of one ``(Z, Y, X)`` timepoint and the surface height map.
+
+    Examples
+    --------
+    >>> zz, yy, xx = np.mgrid[:12, :32, :32]
+    >>> v = np.exp(-0.5 * ((zz - 9.0) / 1.0) ** 2)          # the dome surface, slice 9
+    >>> v[2, 10, 10] = 50.0                                   # deep autofluorescence
+    >>> view, hm = surface_projection(v, 1.0, 1.0, shell_depth_um=3.0, up="+z")
+    >>> float(view[10, 10]) < 2.0, float(v.max(axis=0)[10, 10])
+    (True, 50.0)
+    """
+    hm = surface_height(volume, z_step_um, pixel_size_um, cell_um=cell_um, up=up)
+    return shell_projection(volume, hm, z_step_um, shell_depth_um), hm
+
+
 def top_view(volume: np.ndarray, method: str = "max", **kwargs) -> np.ndarray:
-    """Project one timepoint to a top view with the named method."""
+    """Project one timepoint to a top view with the named method (``max`` or ``surface``)."""
     if method == "max" or volume.ndim == 2:
         return max_projection(volume)
     if method == "surface":
-        from . import projection as _p
-
-        fn = getattr(_p, "surface_projection", None)
-        if fn is None:
-            raise NotImplementedError("surface projection is not available")
-        return fn(volume, **kwargs)[0]
+        return surface_projection(volume, **kwargs)[0]
     raise ValueError(f"unknown projection method {method!r}")

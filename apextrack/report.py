@@ -207,6 +207,11 @@ def _figure(size=(6.4, 4.8)):
     return fig
 
 
+def _legend(ax, **kw) -> None:
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(**kw)
+
+
 def _no_data(ax, text: str) -> None:
     ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, color="0.4", wrap=True)
 
@@ -330,7 +335,7 @@ def fig_divergence(data: ReportData):
     ax.set_ylabel("divergence angle (°)")
     chir = data.summary.get("chirality")
     ax.set_title(f"divergence angles ({chir or 'chirality n/a'})")
-    ax.legend(fontsize=7, loc="upper right", ncols=2, framealpha=0.8)
+    _legend(ax, fontsize=7, loc="upper right", ncols=2, framealpha=0.8)
     return fig
 
 
@@ -357,7 +362,7 @@ def fig_polar(data: ReportData, bin_deg: float = 10.0):
         ax.plot([np.deg2rad(mean % 360)] * 2, [0, top], color="#2ca02c", linewidth=2, label=f"mean {mean % 360:.1f}°")
     ax.set_theta_zero_location("E")
     ax.set_theta_direction(1)
-    ax.legend(fontsize=7, loc="lower left", bbox_to_anchor=(-0.1, -0.1))
+    _legend(ax, fontsize=7, loc="lower left", bbox_to_anchor=(-0.1, -0.1))
     return fig
 
 
@@ -686,13 +691,14 @@ def write_report(source, folder: str | Path | None = None, *, frame: int | None 
             raise ResultsError("no folder to write the report into", hint="give folder=...")
     folder = Path(folder)
     data = gather(source, folder)
-    figs = make_figures(data, frame)
     pngs = {}
     fig_dir = folder / "figures"
     formats = [f.lower() for f in formats]
-    for name, fig in figs.items():
+    for name, func in _FIGURE_FUNCS.items():  # one figure alive at a time: memory stays small
+        fig = func(data, frame) if name == "topview" else func(data)
         png = figure_bytes(fig, "png", dpi)
         pngs[name] = png
+        fig.set_layout_engine("none")  # keep the layout of the first drawing for the other formats
         for fmt in formats:
             atomic_write_bytes(fig_dir / f"{name}.{fmt}", png if fmt == "png" else figure_bytes(fig, fmt, dpi))
         fig.clear()
@@ -780,6 +786,7 @@ def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, tit
         for name, fig in make_experiment_figures(ok, expected_angle_deg).items():
             png = figure_bytes(fig, "png")
             pngs[name] = png
+            fig.set_layout_engine("none")
             for fmt in formats:
                 atomic_write_bytes(folder / "figures" / f"{name}.{fmt}", png if fmt == "png" else figure_bytes(fig, fmt))
             fig.clear()

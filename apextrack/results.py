@@ -48,6 +48,8 @@ def load_results(folder: str | Path) -> dict:
             if name not in TABLE_FILES:
                 out[name] = pd.read_csv(p)
     out["summary"] = read_json(folder / "summary.json")
+    if not isinstance(out["summary"], dict):
+        raise ResultsError("summary is not a JSON object", folder / "summary.json", "re-run the analysis")
     run = folder / "run.json"
     out["run"] = read_json(run) if run.exists() else {}
     tv = folder / "topview.tif"

@@ -41,7 +41,10 @@ class Settings:
     projection: str = _p("max", "", "top view of each 3D timepoint: 'max' (maximum) or 'surface' (shell below the dome surface)", choices=["max", "surface"])
     shell_depth_um: float = _p(6.0, "µm", "depth of the shell below the dome surface (surface projection)", low=0.0)
     centre_um: tuple[float, float] | None = _p(None, "µm", "apex centre (x, y) fixed by the user instead of fitted", kind="pair")
-    centre_method: str = _p("auto", "", "apex centre: 'dome' (centre of the dome in the top view), 'motion' (where the primordia's outward motion starts), 'auto' (motion when enough tracks, else dome)", choices=["auto", "dome", "motion"])
+    centre_method: str = _p("auto", "", "apex centre: 'dome' (summit of the paraboloid fitted to the dome surface; centre of the dome in the top view for 2D stacks), 'view' (centre of the dome in the top view), 'motion' (where the primordia's outward motion starts), 'pattern' (the centre that makes successive azimuths and ln r most regular), 'auto' (motion when enough tracks, else pattern, else dome)", choices=["auto", "dome", "view", "motion", "pattern"])
+    surface_side: str = _p("auto", "", "side of the stack the dome faces: '+z' (summit at high slice index), '-z', or 'auto' (from the data)", choices=["auto", "+z", "-z"])
+    tilt_correction: bool = _p(True, "", "measure azimuths in the plane perpendicular to the fitted dome axis (3D stacks)")
+    detect_3d: bool = _p(False, "", "detect primordia in the 3D volume (anisotropic Laplacian of Gaussian) instead of the top view")
     primordium_diameter_min_um: float = _p(6.0, "µm", "smallest primordium diameter to detect", low=0.0)
     primordium_diameter_max_um: float = _p(20.0, "µm", "largest primordium diameter to detect", low=0.0)
     n_scales: int = _p(6, "", "number of scales of the Laplacian-of-Gaussian search", low=1, high=50)
@@ -51,6 +54,8 @@ class Settings:
     link_search_um: float = _p(12.0, "µm", "largest displacement of a primordium between frames", low=0.0)
     link_memory: int = _p(2, "frames", "how many frames a primordium may be missed and still be linked", low=0, high=100)
     min_track_frames: int = _p(2, "frames", "tracks shorter than this are marked as short", low=1)
+    link_growth_aware: bool = _p(True, "", "link a second time predicting each primordium's outward drift, the rotation and the drift fitted from a first nearest-neighbour linking")
+    link_jump_um: float | None = _p(None, "µm", "a track is cut where a detection lies farther than this from where the track predicts it (default: half of link_search_um)", low=0.0)
     # --- birth order -------------------------------------------------------------------------
     co_initiation_h: float | None = _p(None, "h", "emergences closer than this are flagged co-initiated (default: from the timing uncertainty)", low=0.0)
     # --- analysis ----------------------------------------------------------------------------

@@ -30,6 +30,9 @@ _UNIT_UM = {
     "micrometre": 1.0, "\\u00b5m": 1.0, "nm": 1e-3, "nanometer": 1e-3, "mm": 1e3,
     "millimeter": 1e3, "cm": 1e4, "centimeter": 1e4, "m": 1e6, "meter": 1e6, "inch": 25400.0,
 }
+# time units spelt out (OME-Zarr uses UDUNITS-2 names), in hours
+_UNIT_H_LONG = {"millisecond": 1 / 3.6e6, "microsecond": 1 / 3.6e9, "nanosecond": 1 / 3.6e12,
+                "second": 1 / 3600, "minute": 1 / 60, "hour": 1.0, "day": 24.0}
 # time units as written in OME metadata, in hours
 _UNIT_H = {"s": 1 / 3600, "sec": 1 / 3600, "second": 1 / 3600, "ms": 1 / 3.6e6, "min": 1 / 60,
            "minute": 1 / 60, "h": 1.0, "hour": 1.0, "hr": 1.0, "d": 24.0, "day": 24.0}
@@ -123,11 +126,17 @@ class Stack:
         """All data of timepoint ``t`` (axes: the stack's axes without ``T``), read from disk."""
         if not 0 <= t < self.n_frames:
             raise IndexError(f"frame {t} out of range 0..{self.n_frames - 1}")
-        if self._timepoint is not None:
-            return np.asarray(self._timepoint(t))
-        index = [slice(None)] * len(self.axes)
-        index[self.axes.index("T")] = t
-        return np.asarray(self.data[tuple(index)])
+        try:
+            if self._timepoint is not None:
+                return np.asarray(self._timepoint(t))
+            index = [slice(None)] * len(self.axes)
+            index[self.axes.index("T")] = t
+            return np.asarray(self.data[tuple(index)])
+        except (InputError, MemoryError):
+            raise
+        except Exception as exc:  # decoding errors of a truncated or corrupt file
+            raise InputError(f"cannot read frame {t} ({type(exc).__name__}: {_first_line(exc)})", self.path,
+                             "the file may be truncated or corrupt: copy it again") from None
 
     def frame(self, t: int, channel: int | str | None = None) -> np.ndarray:
         """One channel of timepoint ``t`` as float32, shape ``(Z, Y, X)`` or ``(Y, X)``.
@@ -278,7 +287,7 @@ def _canonicalise(data, axes: str, time_axis: str | None, path) -> tuple[Any, st
                 raise InputError("this is a single 2D image, not a time-lapse", path,
                                  "give a stack with a time axis")
             raise InputError(f"the stack has no time axis (axes {axes}, shape {tuple(data.shape)}); "
-                             f"a time-lapse is needed" if not unknown else
+                             f"as read it holds a single timepoint, and a time-lapse is needed" if not unknown else
                              f"ambiguous axes {axes} {tuple(data.shape)}: cannot tell which is time", path,
                              "say which axis is time with --time-axis (e.g. --time-axis Z)"
                              if shape else "")
@@ -363,20 +372,60 @@ def _open_lazy(tif, series, path: Path):
     return arr, store.close
 
 
+class _TifffileLog:
+    """Catch what tifffile logs while a file is opened (instead of letting it reach stderr) and
+    tell a truncated or damaged file from harmless notes."""
+
+    def __enter__(self):
+        import logging
+
+        self.records: list[str] = []
+        self._logger = logging.getLogger("tifffile")
+        self._handler = logging.Handler(logging.WARNING)
+        self._handler.emit = lambda rec: self.records.append(rec.getMessage())
+        self._propagate = self._logger.propagate
+        self._logger.addHandler(self._handler)
+        self._logger.propagate = False
+        return self
+
+    def __exit__(self, *exc):
+        self._logger.removeHandler(self._handler)
+        self._logger.propagate = self._propagate
+        return False
+
+    def raise_if_damaged(self, path: Path) -> None:
+        """InputError when a logged problem shows missing bytes or corrupt structure."""
+        size = path.stat().st_size
+        for msg in self.records:
+            offsets = [int(v) for v in re.findall(r"offset (\d+)", msg)]
+            # tag 270 (image description) holds the ImageJ/OME axes and scale: without it the
+            # file would be read with the wrong axes
+            if any(o >= size for o in offsets) or "corrupted" in msg.lower() or "TiffTag 270 " in msg:
+                what = msg.split("> ")[-1].rstrip("')\"")
+                raise InputError(f"file is truncated or damaged ({size} bytes; {what})", path,
+                                 "copy the file again from the microscope or archive")
+
+
 def _read_tiff(path: Path, time_axis: str | None) -> Stack:
     import tifffile
 
     if path.stat().st_size == 0:
         raise InputError("file is empty", path)
+    with _TifffileLog() as log:
+        try:
+            tif = tifffile.TiffFile(path)
+        except (tifffile.TiffFileError, ValueError, struct_error(), OSError) as exc:
+            raise InputError(f"not a readable TIFF file ({_first_line(exc)})", path,
+                             "give an ImageJ hyperstack, OME-TIFF or multi-page TIFF") from None
+        try:
+            series = tif.series[0] if tif.series else None
+            _ = tif.is_ome and tif.ome_metadata, tif.is_imagej and tif.imagej_metadata
+        except Exception:
+            series = None
     try:
-        tif = tifffile.TiffFile(path)
-    except (tifffile.TiffFileError, ValueError, struct_error(), OSError) as exc:
-        raise InputError(f"not a readable TIFF file ({_first_line(exc)})", path,
-                         "give an ImageJ hyperstack, OME-TIFF or multi-page TIFF") from None
-    try:
-        if not tif.series:
+        log.raise_if_damaged(path)
+        if series is None:
             raise InputError("TIFF file holds no image", path)
-        series = tif.series[0]
         axes = series.axes
         pixel = [None, None, None]
         interval = None
@@ -516,7 +565,7 @@ def _read_folder(path: Path, time_axis: str | None) -> Stack:
     import tifffile
 
     try:
-        with tifffile.TiffFile(files[0]) as tif:
+        with _TifffileLog() as log, tifffile.TiffFile(files[0]) as tif:
             series = tif.series[0]
             axes0, shape0, dtype0 = series.axes.upper(), tuple(series.shape), series.dtype
             if tif.is_ome and tif.ome_metadata:
@@ -525,8 +574,9 @@ def _read_folder(path: Path, time_axis: str | None) -> Stack:
                 pixel, interval, names = _imagej_meta(tif)
             else:
                 (pixel, interval), names = _plain_meta(tif), None
-    except (tifffile.TiffFileError, ValueError, OSError, struct_error()) as exc:
+    except (tifffile.TiffFileError, ValueError, OSError, IndexError, struct_error()) as exc:
         raise InputError(f"not a readable TIFF file ({_first_line(exc)})", files[0]) from None
+    log.raise_if_damaged(files[0])
     # one file per timepoint: unknown leading axis of a plain file is z
     axes0 = axes0.replace("S", "C")
     unknown = [a for a in axes0 if a not in "ZCYX"]
@@ -623,13 +673,18 @@ def _read_zarr(path: Path, axes: str | None, time_axis: str | None) -> Stack:
                     pixel["XYZ".index(a)] = _length_um(scale[i], units[i] or "um")
                 elif a == "T":
                     tu = str(units[i] or "hour").lower()
-                    interval = float(scale[i]) * _UNIT_H.get(tu, _UNIT_H.get(tu.rstrip("s"), 1.0))
+                    factor = _UNIT_H.get(tu, _UNIT_H.get(tu.rstrip("s"), _UNIT_H_LONG.get(tu.rstrip("s"))))
+                    interval = None if factor is None else float(scale[i]) * factor  # unknown unit: not guessed
         omero = attrs.get("omero", {})
         if omero.get("channels"):
             names = [str(c.get("label", f"ch{i}")) for i, c in enumerate(omero["channels"])]
     else:
-        file_axes = axes or dict(node.attrs).get("axes")
-        if isinstance(file_axes, list):
+        file_axes = axes or dict(node.attrs).get("axes") or dict(node.attrs).get("_ARRAY_DIMENSIONS") \
+            or getattr(getattr(node, "metadata", None), "dimension_names", None)
+        if isinstance(file_axes, (list, tuple)):
+            if any(a is None for a in file_axes):
+                file_axes = None
+        if isinstance(file_axes, (list, tuple)):
             file_axes = "".join(str(a)[0] for a in file_axes)
     if not file_axes:
         raise MetadataError(f"zarr array {tuple(arr.shape)} does not say its axes", path,
@@ -661,8 +716,9 @@ def _apply_overrides(stack: Stack, pixel_size_um, z_step_um, interval_h, channel
         if val is not None and math.isfinite(val) and val <= 0:
             if (name.endswith("pixel size") and pixel_size_um is None) or (name == "z step" and z_step_um is None) \
                     or (name == "frame interval" and interval_h is None):
+                option = {"z step": "--z-step", "frame interval": "--interval"}.get(name, "--pixel-size")
                 raise MetadataError(f"the file's {name} is {val:g}", stack.path,
-                                    "give the right value (--pixel-size / --interval)")
+                                    f"give the right value with {option}")
     if pixel_size_um is not None:
         if differs(px, float(pixel_size_um)):
             stack.warnings.append(f"pixel size {pixel_size_um:g} µm given by the user overrides the file's {px:g} µm")

@@ -78,6 +78,25 @@ SCHEMA: dict[str, list[Column]] = {
         _c("to_rank", "int", "", "birth rank of the next primordium"),
         _c("angle_deg", "float", "deg", "divergence angle in the direction of the generative spiral, [0, 360)"),
         _c("interval_h", "float", "h", "time between the two emergences"),
+        _c("signed_angle_deg", "float", "deg", "azimuth difference, counter-clockwise positive, [-180, 180)", required=False),
+        _c("angle_class", "str", "", "class of the angle under the permutation labelling (α, 2α, -α, 3α, -2α; α = expected angle)", required=False),
+        _c("class_residual_deg", "float", "deg", "angle minus its class centre, [-180, 180)", required=False),
+        _c("permutation_id", "int", "", "permuted block of birth order the pair belongs to (0 = none)", required=False),
+        _c("unexplained", "bool", "", "the angle fits no class (von Mises density below uniform)", required=False),
+        _c("corrected_angle_deg", "float", "deg", "k-th divergence angle after correcting the birth order", required=False),
+        _c("angle_source", "str", "", "azimuths taken in a common frame ('common_frame') or at emergence ('emergence')", required=False),
+        _c("frame", "int", "", "common frame of the two azimuths (-1 when none)", required=False),
+        _c("from_theta_deg", "float", "deg", "azimuth of the earlier primordium used for the angle", required=False),
+        _c("to_theta_deg", "float", "deg", "azimuth of the next primordium used for the angle", required=False),
+        _c("co_initiated", "bool", "", "the two primordia were initiated together (same node)", required=False),
+    ],
+    "parastichies": [
+        _c("frame", "int", "", "frame whose positions gave the parastichies"),
+        _c("birth_rank", "int", "", "birth rank of the primordium"),
+        _c("family", "str", "", "'m' (fewer spirals) or 'n' (more spirals)"),
+        _c("parastichy_number", "int", "", "number of spirals of the family (m or n)"),
+        _c("spiral_index", "int", "", "which spiral of the family the primordium lies on (0 .. number-1)"),
+        _c("winding", "str", "", "way the family's spirals turn followed outward: 'ccw' or 'cw'", required=False),
     ],
 }
 
@@ -273,7 +292,10 @@ def read_table(path: str | Path, table: str | None = None) -> pd.DataFrame:
         try:
             if col.kind == "bool":
                 if s.dtype != bool:
-                    s = s.map(lambda v: str(v).strip().lower() in ("true", "1", "yes"))
+                    text = s.map(lambda v: "" if pd.isna(v) else str(v).strip().lower())
+                    if not text.isin(["true", "1", "yes", "false", "0", "no", "", "1.0", "0.0"]).all():
+                        raise ValueError("not true/false")
+                    s = text.isin(["true", "1", "yes", "1.0"])
                 df[col.name] = s.astype(bool)
             elif col.kind == "int":
                 if s.isna().any():

@@ -323,3 +323,32 @@ def test_time_scaling_scales_plastochron(scale, T, n):
     assert b["radial_growth_rate_per_h"] == pytest.approx(a["radial_growth_rate_per_h"] / scale, rel=1e-9)
     assert b["plastochron_ratio"] == pytest.approx(a["plastochron_ratio"], rel=1e-12)
     assert b["divergence_mean_deg"] == pytest.approx(a["divergence_mean_deg"], abs=1e-9)
+
+
+def test_tables_round_trip(tmp_path):
+    # every written table reads back to the same values (project convention)
+    from apextrack.tables import read_table, write_table
+
+    p, t = make_tables(n=15, angle_noise=3.0, seed=9)
+    res = analyse_phyllotaxis(p, t, FAST)
+    assert len(res.parastichies) > 0
+    for name, df in (("divergence", res.divergence), ("parastichies", res.parastichies)):
+        write_table(df, tmp_path / f"{name}.csv", name)
+        back = read_table(tmp_path / f"{name}.csv", name)
+        pd.testing.assert_frame_equal(back, df[list(back.columns)].reset_index(drop=True), check_dtype=False)
+
+
+def test_mode_needs_evidence():
+    from apextrack.phyllotaxis.mode import classify_mode
+
+    # uniformly scattered angles fit no mode: "irregular", with the evidence
+    rng = np.random.default_rng(12)
+    out = classify_mode(rng.uniform(0, 360, 30))
+    assert out["mode"] == "irregular" and out["evidence"]["fraction"] < 0.5
+    # four angles cannot show a whorl of three (two full cycles = 6 angles are needed)
+    out = classify_mode([91.7, 212.3, 228.9, 78.1], [False, False, True, False])
+    assert out["mode"] != "whorled"
+    assert all(c["organs_per_node"] <= 2 for c in out["evidence"]["candidates"])
+    # fewer than 3 angles: no mode, with the reason
+    out = classify_mode([137.5, 137.5])
+    assert out["mode"] is None and "at least 3" in out["reason"]

@@ -136,3 +136,23 @@ def test_permutation_reported_by_analyse():
     assert list(d["permutation_id"]) == [0, 0, 1, 1, 1, 0, 0, 0, 0]
     assert np.allclose(d["corrected_angle_deg"], G)
     assert s["chirality"] == "ccw" and s["chirality_support"] == pytest.approx(6 / 9)
+
+
+@pytest.mark.parametrize("direction", [1, -1])
+def test_noisy_permuted_spiral_is_still_a_spiral(direction):
+    # a golden spiral (both chiralities) with κ = 10.4 angle noise and two inserted
+    # permutations: the mode stays "spiral" and both blocks are reported
+    rng = np.random.default_rng(8)
+    true_pos = np.arange(40)
+    true_pos[10:12] = [11, 10]
+    true_pos[25:28] = [27, 26, 25]
+    theta = direction * (G * true_pos + np.rad2deg(rng.vonmises(0.0, 10.4, 40)) / math.sqrt(2))
+    p = pd.DataFrame({"birth_rank": np.arange(1, 41), "track_id": np.arange(40),
+                      "emergence_time_h": 6.0 * np.arange(40), "theta_deg": theta % 360,
+                      "r_um": 15.0, "co_initiated": False})
+    s = analyse_phyllotaxis(p, None, Settings(bootstrap_n=100)).summary
+    assert s["chirality"] == ("ccw" if direction > 0 else "cw")
+    assert s["mode"] == "spiral"
+    blocks = sorted((q["ranks"], q["kind"]) for q in s["permutations"])
+    assert ([11, 12], "2-permutation") in blocks and ([26, 27, 28], "3-permutation") in blocks
+    assert s["corrected_divergence_mean_deg"] == pytest.approx(G, abs=5)

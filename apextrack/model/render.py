@@ -7,8 +7,9 @@ downward), ``z_um = slice · z_step`` (slice 0 at the bottom of the stack, the d
 the top). In the apex's own frame the surface is the paraboloid ``z' = −ρ²/(2·Rc)`` below the
 summit (``Rc`` the curvature radius at the summit). A primordium at distance ``r`` and azimuth
 ``θ`` (counter-clockwise on the displayed image) sits at ``(r cos θ, −r sin θ, −r²/(2Rc) − depth)``.
-The dome may be tilted by ``tilt_deg`` towards the azimuth ``tilt_direction_deg`` (a rigid rotation
-about the summit). Between timepoints the specimen moves: frame ``f`` is translated by the
+The dome may be tilted by ``tilt_deg``: a rigid rotation about the summit point that leans the
+dome axis towards the azimuth ``tilt_direction_deg`` (so the surface rises on the opposite side;
+the summit point, where the axis meets the surface, stays the apex centre of the truth tables). Between timepoints the specimen moves: frame ``f`` is translated by the
 cumulative drift and rotated by ``f × rotation_deg_per_frame`` (counter-clockwise on the display)
 about the centre of the field of view. Frame 0 has no drift and no rotation.
 

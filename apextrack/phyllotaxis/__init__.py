@@ -41,8 +41,14 @@ class PhyllotaxisResult:
     Attributes
     ----------
     divergence : DataFrame
-        One row per successive pair of primordia (see :data:`DIVERGENCE_COLUMNS`);
-        ``permutation_id`` is 0 outside permuted blocks, else the 1-based id of the block.
+        One row per successive pair of primordia (see :data:`DIVERGENCE_COLUMNS`):
+        ``angle_deg`` in the generative direction in [0, 360), ``signed_angle_deg``
+        (counter-clockwise positive, [-180, 180)), ``angle_class`` and ``class_residual_deg``
+        under the permutation labelling, ``permutation_id`` (0 outside permuted blocks, else
+        the 1-based id of the block), ``unexplained``, ``corrected_angle_deg`` (the k-th angle
+        of the corrected birth order), ``angle_source`` and ``frame`` (where the azimuths were
+        taken), ``co_initiated`` (same node). Units and meanings are in
+        ``apextrack.tables.SCHEMA["divergence"]``.
     parastichies : DataFrame
         One row per (primordium, parastichy family) in the analysis frame.
     summary : dict
@@ -119,9 +125,10 @@ def analyse_phyllotaxis(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
     summary["chirality"] = chir["chirality"]
     summary["chirality_support"] = chir["support"]
     summary["chirality_determined"] = chir["determined"]
-    if chir["note"]:
-        _reason(summary, "chirality_support", chir["note"]) if chir["support"] is None \
-            else summary["notes"].append(chir["note"])
+    if chir["note"] and chir["support"] is None:
+        _reason(summary, "chirality_support", chir["note"])
+    elif chir["note"]:
+        summary["notes"].append(chir["note"])
     if pairs is not None:
         d = _div.divergence_table(pairs, chir["chirality"])
         summary["n_angles_common_frame"] = int((d["angle_source"] == "common_frame").sum())
@@ -233,7 +240,8 @@ def analyse_phyllotaxis(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
            if finite.sum() >= 2 else None)
     md = _mode.classify_mode(angles, co_pairs, tolerance=s.mode_tolerance_deg,
                              permuted_spiral_residuals=None if lab is None else lab["residual_deg"],
-                             expected_angle_deg=alpha)
+                             expected_angle_deg=alpha,
+                             permuted_spiral_multiples=None if lab is None else lab["multiples"])
     summary["mode"] = md["mode"]
     summary["mode_evidence"] = md["evidence"]
     summary["organs_per_node"] = md["organs_per_node"]
@@ -253,7 +261,7 @@ def analyse_phyllotaxis(primordia: pd.DataFrame, tracks: pd.DataFrame | None = N
     if lab is None:
         _reason(summary, "permutations",
                 f"permutation detection needs at least 2 divergence angles (3 primordia); {int(finite.sum())} available")
-    elif md["mode"] not in (None, "spiral"):
+    elif md["mode"] not in (None, "spiral", "irregular"):
         _reason(summary, "permutations",
                 f"permutation classes assume a spiral with the expected angle; the pattern mode is {md['mode']}")
     else:

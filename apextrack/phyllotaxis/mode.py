@@ -8,8 +8,13 @@ where β is the rotation between successive nodes: β = 180/k for alternating wh
 180°, decussate 90°, trimerous whorls 60°; common practice, no source) and β ≈ golden/k for
 multijugate spirals (bijugate 68.75°). The node boundaries come from co-initiation flags when
 they are given, otherwise every phase is tried. A spiral is one organ per node with a constant
-angle. The mode with most angles within ``tolerance`` of their prediction wins, but a more complex
-mode (more organs per node) must fit at least max(1, 10 %) more angles than a simpler one.
+angle. Each candidate's evidence is the number of angles within ``tolerance`` of its prediction,
+weighed against the chance that random angles fit it as well (a binomial tail: a whorl of six
+accepts any angle near a multiple of 60°, a spiral only one direction). The least likely by
+chance wins, but a more complex mode (more organs per node) must be at least ten times less
+likely by chance than a simpler one; a mode of k organs per node needs at least 2k angles; a
+winner that fits fewer than half of the angles or has a chance probability above 1 % makes the
+pattern "irregular".
 """
 
 from __future__ import annotations
@@ -17,6 +22,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy.stats import binom
 
 from .. import circular as circ
 
@@ -59,8 +65,23 @@ def _fit_whorl(a: np.ndarray, within: np.ndarray, k: int, tol: float):
     return n_fit, beta, res
 
 
+def _log10_p(c: dict, n: int) -> float:
+    """log10 of the chance that at least ``n_fit`` of ``n`` random angles fit the candidate."""
+    if c["n_fit"] <= 0:
+        return 0.0
+    return float(binom.logsf(c["n_fit"] - 1, n, c["p0"]) / math.log(10.0))
+
+
+def _candidates_json(candidates) -> list[dict]:
+    return [{"organs_per_node": int(c["k"]), "kind": c["kind"], "n_fit": int(c["n_fit"]),
+             "node_rotation_deg": None if c["beta"] is None or (isinstance(c["beta"], float) and math.isnan(c["beta"]))
+             else float(c["beta"]), "phase": c["phase"], "chance_fit": float(c["p0"]),
+             "log10_p_chance": float(c.get("log10_p", math.nan))} for c in candidates]
+
+
 def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
-                  max_k: int = 6, permuted_spiral_residuals=None, expected_angle_deg: float | None = None) -> dict:
+                  max_k: int = 6, permuted_spiral_residuals=None, expected_angle_deg: float | None = None,
+                  permuted_spiral_multiples=None) -> dict:
     """Classify the pattern mode of divergence angles (generative direction, [0, 360)).
 
     Parameters
@@ -79,11 +100,15 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
         spiral whose birth order is locally permuted is still a spiral.
     expected_angle_deg : float, optional
         The expected angle used for those residuals (reported as the spiral's angle).
+    permuted_spiral_multiples : array_like of int, optional
+        The class of each angle in that labelling (1 = α); angles given another class count
+        as five times likelier to fit by chance.
 
     Returns
     -------
     dict
-        ``mode`` ("spiral", "distichous", "decussate", "whorled", "multijugate" or None),
+        ``mode`` ("spiral", "distichous", "decussate", "whorled", "multijugate", "irregular"
+        when no mode fits half of the angles, or None when there are fewer than 3 angles),
         ``organs_per_node``, ``node_rotation_deg`` (β; the divergence for a spiral; for a
         multijugate pattern folded to at most 180/k, since a node of k organs looks the same
         after 360/k),
@@ -106,25 +131,36 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
     # spiral: one organ per node, constant angle
     m = circ.circ_mean(a)
     res = circ.wrap180(a - m) if not math.isnan(m) else np.full(a.size, 180.0)
+    w = min(1.0, 2.0 * tolerance / 360.0)  # chance that a random angle fits one direction
     candidates.append({"k": 1, "kind": "spiral", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
-                       "beta": m, "phase": None})
+                       "beta": m, "phase": None, "p0": w})
     if permuted_spiral_residuals is not None:
         pr = np.asarray(permuted_spiral_residuals, dtype=float)
         if pr.size == a.size:
             n_fit = int(np.sum(np.abs(np.where(np.isfinite(pr), pr, 180.0)) <= tolerance))
-            if n_fit > candidates[0]["n_fit"]:
-                candidates[0] = {"k": 1, "kind": "spiral", "n_fit": n_fit, "phase": "permutation-aware",
-                                 "beta": expected_angle_deg if expected_angle_deg is not None else m}
+            mult = (np.ones(a.size) if permuted_spiral_multiples is None
+                    else np.asarray(permuted_spiral_multiples, dtype=float))
+            p0 = float(np.mean(np.where(mult == 1, w, min(1.0, 5 * w)))) if mult.size == a.size else w
+            cand = {"k": 1, "kind": "spiral", "n_fit": n_fit, "phase": "permutation-aware", "p0": p0,
+                    "beta": expected_angle_deg if expected_angle_deg is not None else m}
+            if _log10_p(cand, a.size) < _log10_p(candidates[0], a.size):
+                candidates[0] = cand
     # distichous: spiral with 180°
     res = circ.wrap180(a - 180.0)
     candidates.append({"k": 1, "kind": "distichous", "n_fit": int(np.sum(np.abs(res) <= tolerance)),
-                       "beta": 180.0, "phase": None})
+                       "beta": 180.0, "phase": None, "p0": w})
     co = None if co_initiated_pairs is None else np.asarray(co_initiated_pairs, dtype=bool)
     if co is not None and co.size != a.size:
         co = None
     idx = np.arange(a.size)
+    k_co = None
+    if co is not None and co.any():
+        sizes = np.bincount(np.asarray(nodes_from_co_initiation(co)))
+        sizes = sizes[sizes > 1]
+        k_co = int(np.bincount(sizes).argmax())
     for k in range(2, max_k + 1):
-        if a.size < k:
+        # a node pattern needs two full cycles of k angles to be told from noise
+        if a.size < 2 * k:
             break
         trials = []
         for ph in range(k):
@@ -132,25 +168,35 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
             # organ i+1 starts a node
             within = ((idx + 1 + ph) % k) != 0
             trials.append((within, ph))
-        if co is not None and co.any():
+        if k == k_co:
             trials.append((co, "co_initiation"))
         best = None
         for within, ph in trials:
             n_fit, beta, _ = _fit_whorl(a, within, k, tolerance)
-            if best is None or n_fit > best["n_fit"]:
-                best = {"k": k, "kind": "node", "n_fit": n_fit, "beta": beta, "phase": ph}
+            p0 = float(np.mean(np.where(within, min(1.0, (k - 1) * w), min(1.0, k * w))))
+            cand = {"k": k, "kind": "node", "n_fit": n_fit, "beta": beta, "phase": ph, "p0": p0}
+            if best is None or _log10_p(cand, a.size) < _log10_p(best, a.size):
+                best = cand
         candidates.append(best)
     # choose: candidates in order of complexity (distichous, spiral, 2, 3, ... organs per node);
-    # a more complex mode must fit clearly more angles than the simpler winner so far
-    margin = max(1, int(math.ceil(0.1 * a.size)))
+    # a more complex mode must be at least ten times less likely by chance than the simpler
+    # winner so far
+    for c in candidates:
+        c["log10_p"] = _log10_p(c, a.size)
     ordered = [candidates[1], candidates[0]] + candidates[2:]
     winner = ordered[0]
     for c in ordered[1:]:
-        need = 1 if (winner["kind"] == "distichous" and c["kind"] == "spiral") else margin
-        if c["n_fit"] >= winner["n_fit"] + need:
+        need = 0.0 if (winner["kind"] == "distichous" and c["kind"] == "spiral") else 1.0
+        if c["log10_p"] < winner["log10_p"] - need:
             winner = c
     k = winner["k"]
     beta = winner["beta"]
+    if winner["n_fit"] < 0.5 * a.size or winner["log10_p"] > -2.0:
+        ev = {"n_fit": int(winner["n_fit"]), "n_angles": int(a.size),
+              "fraction": float(winner["n_fit"] / a.size), "tolerance_deg": float(tolerance),
+              "candidates": _candidates_json(candidates)}
+        return {"mode": "irregular", "organs_per_node": None, "node_rotation_deg": None, "evidence": ev,
+                "reason": None}
     if winner["kind"] == "spiral":
         mode = "distichous" if abs(circ.wrap180(beta - 180.0)) <= tolerance else "spiral"
     elif winner["kind"] == "distichous":
@@ -170,9 +216,7 @@ def classify_mode(angles_deg, co_initiated_pairs=None, tolerance: float = 25.0,
                 beta = min(bmod, step - bmod)
     ev = {"n_fit": int(winner["n_fit"]), "n_angles": int(a.size),
           "fraction": float(winner["n_fit"] / a.size), "tolerance_deg": float(tolerance),
-          "candidates": [{"organs_per_node": int(c["k"]), "kind": c["kind"], "n_fit": int(c["n_fit"]),
-                          "node_rotation_deg": None if c["beta"] is None or (isinstance(c["beta"], float) and math.isnan(c["beta"])) else float(c["beta"]),
-                          "phase": c["phase"]} for c in candidates]}
+          "candidates": _candidates_json(candidates)}
     return {"mode": mode, "organs_per_node": int(k),
             "node_rotation_deg": None if beta is None or math.isnan(beta) else float(beta),
             "evidence": ev, "reason": None}

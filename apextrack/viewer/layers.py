@@ -192,7 +192,7 @@ def primordium_flags(primordia: pd.DataFrame, divergence: pd.DataFrame, min_trac
             unx = divergence[divergence["unexplained"].astype(str).str.lower().isin(["true", "1"])]
             unexplained_ranks |= set(unx["to_rank"].astype(int))
     p["permuted"] = p["birth_rank"].astype(int).isin(permuted_ranks).to_numpy()
-    low = p["birth_rank"].astype(int).isin(unexplained_ranks).to_numpy()
+    low = np.array(p["birth_rank"].astype(int).isin(unexplained_ranks).to_numpy(), dtype=bool)
     if "n_frames" in primordia:
         low |= (pd.to_numeric(primordia["n_frames"], errors="coerce").fillna(0) < min_track_frames).to_numpy()
     if "rank_confidence" in primordia:
@@ -271,7 +271,7 @@ def centre_layer(centres: pd.DataFrame, px: float, interval_h: float, folder=Non
     return (data, kwargs, "points")
 
 
-def _arc(cx: float, cy: float, r: float, start_deg: float, sweep_deg: float, n: int = 24) -> np.ndarray:
+def _arc(cx: float, cy: float, r: float, start_deg: float, sweep_deg: float, n: int = 16) -> np.ndarray:
     a = np.deg2rad(start_deg + np.linspace(0.0, sweep_deg, n))
     # theta is counter-clockwise on the displayed image: y = yc - r sin(theta)
     return np.column_stack([cy - r * np.sin(a), cx + r * np.cos(a)])

@@ -1,0 +1,284 @@
+"""Drift and rotation correction between timepoints.
+
+The specimen may move and turn between timepoints. A rigid motion of frame ``t`` relative to
+frame ``t − 1`` is written as a rotation by ``rotation_deg`` (counter-clockwise on the
+displayed image) about the centre ``f`` of the field of view followed by a shift::
+
+    x_t = f + R(φ)·(x_{t−1} − f) + shift
+
+Estimation (streaming: only the previous frame's Fourier transform and detections are kept):
+
+1. **Translation guess** — phase correlation of the two top views (scikit-image
+   ``phase_cross_correlation``, on a 2× binned copy for large frames).
+2. **Rotation and refined shift from the primordia** — the detections of the two frames are
+   matched (search over rotations, then mutual nearest neighbours) and a similarity transform
+   ``x_t = s·R·x_{t−1} + T`` is fitted by least squares (Umeyama 1991, IEEE TPAMI 13:376). The
+   scale ``s`` absorbs the growth of the pattern about the apex centre ``c`` (primordia drift
+   outward homothetically); the rigid shift is recovered as
+   ``shift = T − (I − R)·f − (1 − s)·R·c``.
+   When fewer than three primordia can be matched, the phase-correlation shift is used alone
+   (no rotation) and the row says so; a frame with fewer than three detections is left
+   unregistered and the next frame is registered to the last good one.
+
+The transforms are applied to detection coordinates, not to the images: every detection is
+mapped exactly into the frame of reference of the first frame (no resampling, no
+interpolation blur); the top views written to the results stay as acquired.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+REGISTRATION_COLUMNS = ["frame", "shift_x_um", "shift_y_um", "rotation_deg", "cum_shift_x_um",
+                        "cum_shift_y_um", "cum_rotation_deg", "scale", "n_matched", "rms_um", "method"]
+
+
+def _rot(phi_deg: float) -> np.ndarray:
+    """Rotation matrix acting on image (x, y) that turns counter-clockwise on the display."""
+    p = math.radians(phi_deg)
+    c, s = math.cos(p), math.sin(p)
+    # rows run downward: a counter-clockwise turn on screen is clockwise in (x, y) maths axes
+    return np.array([[c, s], [-s, c]])
+
+
+def rigid_matrix(rotation_deg: float, shift_xy, centre_xy) -> np.ndarray:
+    """3×3 homogeneous matrix of ``x ↦ f + R(x − f) + shift`` (image x, y)."""
+    r = _rot(rotation_deg)
+    f = np.asarray(centre_xy, float)
+    m = np.eye(3)
+    m[:2, :2] = r
+    m[:2, 2] = f - r @ f + np.asarray(shift_xy, float)
+    return m
+
+
+def decompose(matrix: np.ndarray, centre_xy) -> tuple[float, np.ndarray]:
+    """Rotation (deg) and shift about ``centre_xy`` of a rigid 3×3 matrix."""
+    r = matrix[:2, :2]
+    phi = math.degrees(math.atan2(r[0, 1], r[0, 0]))
+    f = np.asarray(centre_xy, float)
+    return phi, matrix[:2, 2] - f + r @ f
+
+
+def phase_shift(reference: np.ndarray, moving: np.ndarray, upsample: int = 4) -> np.ndarray:
+    """Shift ``(dx, dy)`` in pixels that moves ``reference`` onto ``moving`` (phase correlation).
+
+    Examples
+    --------
+    >>> yy, xx = np.mgrid[:64, :64]
+    >>> a = np.exp(-((xx - 30) ** 2 + (yy - 25) ** 2) / 20.0)
+    >>> b = np.exp(-((xx - 33.5) ** 2 + (yy - 23) ** 2) / 20.0)
+    >>> [round(float(v), 1) for v in phase_shift(a, b)]
+    [3.5, -2.0]
+    """
+    from skimage.registration import phase_cross_correlation
+
+    a = np.asarray(reference, np.float32)
+    b = np.asarray(moving, np.float32)
+    bin_ = 2 if min(a.shape) >= 256 else 1
+    if bin_ > 1:
+        ny, nx = (a.shape[0] // 2) * 2, (a.shape[1] // 2) * 2
+        a = a[:ny, :nx].reshape(ny // 2, 2, nx // 2, 2).mean(axis=(1, 3))
+        b = b[:ny, :nx].reshape(ny // 2, 2, nx // 2, 2).mean(axis=(1, 3))
+    a = a - a.mean()
+    b = b - b.mean()
+    shift, _, _ = phase_cross_correlation(a, b, upsample_factor=upsample, normalization=None)
+    # skimage returns the shift that registers moving onto reference: reverse it
+    return -np.array([shift[1], shift[0]], float) * bin_
+
+
+def fit_similarity(src: np.ndarray, dst: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+    """Least-squares similarity ``dst ≈ s·R·src + T`` (Umeyama 1991). Returns ``(s, R, T)``."""
+    src = np.asarray(src, float)
+    dst = np.asarray(dst, float)
+    ms, md = src.mean(axis=0), dst.mean(axis=0)
+    a, b = src - ms, dst - md
+    cov = b.T @ a / len(src)
+    u, d, vt = np.linalg.svd(cov)
+    sgn = np.eye(2)
+    if np.linalg.det(u) * np.linalg.det(vt) < 0:
+        sgn[1, 1] = -1
+    r = u @ sgn @ vt
+    var = (a ** 2).sum() / len(src)
+    s = float(np.trace(np.diag(d) @ sgn) / var) if var > 0 else 1.0
+    return s, r, md - s * r @ ms
+
+
+def _mutual_nn(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray]:
+    from scipy.spatial import cKDTree
+
+    if len(a) == 0 or len(b) == 0:
+        return np.zeros(0, int), np.zeros(0, int)
+    ta, tb = cKDTree(a), cKDTree(b)
+    dab, iab = tb.query(a, distance_upper_bound=tol)
+    dba, iba = ta.query(b, distance_upper_bound=tol)
+    ia = np.nonzero(np.isfinite(dab))[0]
+    ib = iab[ia]
+    ok = iba[ib] == ia
+    return ia[ok], ib[ok]
+
+
+def match_points(prev_xy: np.ndarray, cur_xy: np.ndarray, shift_guess, tol: float,
+                 max_rotation_deg: float = 15.0, pivot=None) -> dict | None:
+    """Match two point sets related by a small rotation, shift and growth; fit a similarity.
+
+    Returns ``{"scale", "R", "T", "n", "rms", "src", "dst"}`` (pixels) or None with fewer than
+    three matches.
+    """
+    prev_xy = np.asarray(prev_xy, float).reshape(-1, 2)
+    cur_xy = np.asarray(cur_xy, float).reshape(-1, 2)
+    if len(prev_xy) < 3 or len(cur_xy) < 3:
+        return None
+    pivot = prev_xy.mean(axis=0) if pivot is None else np.asarray(pivot, float)
+    best = None
+    for ang in np.arange(-max_rotation_deg, max_rotation_deg + 1e-9, 1.0):
+        r = _rot(ang)
+        pred = pivot + (prev_xy - pivot) @ r.T + np.asarray(shift_guess, float)
+        ia, ib = _mutual_nn(pred, cur_xy, tol)
+        if ia.size:
+            err = float(np.sum(np.hypot(*(pred[ia] - cur_xy[ib]).T)))
+            score = (ia.size, -err)
+            if best is None or score > best[0]:
+                best = (score, ia, ib)
+    if best is None or best[1].size < 3:
+        return None
+    ia, ib = best[1], best[2]
+    for _ in range(4):
+        s, r, t = fit_similarity(prev_xy[ia], cur_xy[ib])
+        pred = s * prev_xy @ r.T + t
+        res = np.hypot(*(pred[ia] - cur_xy[ib]).T)
+        cut = max(3.0 * 1.4826 * float(np.median(res)), 0.25 * tol)
+        ia2, ib2 = _mutual_nn(pred, cur_xy, min(tol, max(cut, 1.0)))
+        if ia2.size < 3:
+            break
+        if ia2.size == ia.size and np.array_equal(ia2, ia) and np.array_equal(ib2, ib):
+            break
+        ia, ib = ia2, ib2
+    s, r, t = fit_similarity(prev_xy[ia], cur_xy[ib])
+    pred = s * prev_xy[ia] @ r.T + t
+    rms = float(np.sqrt(np.mean(np.sum((pred - cur_xy[ib]) ** 2, axis=1))))
+    return {"scale": s, "R": r, "T": t, "n": int(ia.size), "rms": rms, "src": ia, "dst": ib}
+
+
+@dataclass
+class Registrar:
+    """Streaming registration of a time-lapse, one frame at a time.
+
+    Parameters
+    ----------
+    shape_yx : (int, int)
+        Frame size in pixels (the rotation centre is the field centre).
+    pixel_size_um : float
+    match_tol_px : float
+        Largest distance between a primordium's predicted and detected position when matching.
+    max_rotation_deg : float
+        Largest rotation between two consecutive frames that is searched for.
+    enabled : bool
+        False: every frame keeps its own coordinates (rows still written, method ``off``).
+
+    Examples
+    --------
+    >>> reg = Registrar((64, 64), 1.0)
+    >>> row = reg.update(0, np.zeros((64, 64)), np.zeros((0, 2)))
+    >>> row["method"], row["cum_rotation_deg"]
+    ('reference', 0.0)
+    """
+
+    shape_yx: tuple[int, int]
+    pixel_size_um: float
+    match_tol_px: float = 8.0
+    max_rotation_deg: float = 15.0
+    enabled: bool = True
+    min_points: int = 3
+    rows: list = field(default_factory=list)
+
+    def __post_init__(self):
+        ny, nx = self.shape_yx
+        self.field_centre = np.array([(nx - 1) / 2.0, (ny - 1) / 2.0])
+        self._prev_view = None
+        self._prev_pts = None
+        self._prev_centre = None
+        self._cum = np.eye(3)       # frame t → frame 0 is inv(self._cum)
+        self._ref_cum = np.eye(3)
+
+    def update(self, t: int, view: np.ndarray, points_xy_px: np.ndarray, apex_xy_px=None) -> dict:
+        """Register frame ``t`` to the last registered frame; returns its registration row.
+
+        ``points_xy_px``: detections ``(x, y)`` of this frame in its own pixels; ``apex_xy_px``:
+        the apex centre of this frame (pixels) used to tell growth from drift.
+        """
+        pts = np.asarray(points_xy_px, float).reshape(-1, 2)
+        apex = self.field_centre if apex_xy_px is None else np.asarray(apex_xy_px, float)
+        px = self.pixel_size_um
+        step = np.eye(3)
+        method, n, rms, scale = "reference", 0, math.nan, math.nan
+        if not self.enabled:
+            method = "off"
+        elif self._prev_view is None:
+            if len(pts) >= self.min_points:
+                self._store(view, pts, apex)
+        elif len(pts) < self.min_points:
+            method = "skipped (too few detections)"
+        else:
+            guess = phase_shift(self._prev_view, view)
+            fit = match_points(self._prev_pts, pts, guess, self.match_tol_px, self.max_rotation_deg,
+                               pivot=self._prev_centre)
+            if fit is not None:
+                r, s, tvec = fit["R"], fit["scale"], fit["T"]
+                phi = math.degrees(math.atan2(r[0, 1], r[0, 0]))
+                f = self.field_centre
+                shift = tvec - (np.eye(2) - r) @ f - (1.0 - s) * (r @ self._prev_centre)
+                step = rigid_matrix(phi, shift, f)
+                method, n, rms, scale = "primordia", fit["n"], fit["rms"] * px, s
+            else:
+                step = rigid_matrix(0.0, guess, self.field_centre)
+                method = "phase correlation (translation only)"
+            self._cum = step @ self._ref_cum
+            self._store(view, pts, apex)
+        if method.startswith("skipped") or method == "off":
+            cum = self._ref_cum if method != "off" else np.eye(3)
+        else:
+            cum = self._cum
+        self._current = cum
+        phi, shift = decompose(step, self.field_centre)
+        cphi, cshift = decompose(cum, self.field_centre)
+        row = {"frame": int(t), "shift_x_um": float(shift[0] * px), "shift_y_um": float(shift[1] * px),
+               "rotation_deg": float(phi), "cum_shift_x_um": float(cshift[0] * px),
+               "cum_shift_y_um": float(cshift[1] * px), "cum_rotation_deg": float(cphi),
+               "scale": float(scale), "n_matched": int(n), "rms_um": float(rms), "method": method}
+        self.rows.append(row)
+        return row
+
+    def _store(self, view, pts, apex):
+        self._prev_view = np.asarray(view, np.float32).copy()
+        self._prev_pts = pts.copy()
+        self._prev_centre = np.asarray(apex, float)
+        self._ref_cum = self._cum.copy()
+
+    def to_reference(self, x_px, y_px) -> tuple[np.ndarray, np.ndarray]:
+        """Map pixel positions of the frame last passed to :meth:`update` into frame 0."""
+        inv = np.linalg.inv(self._current)
+        x = np.asarray(x_px, float)
+        y = np.asarray(y_px, float)
+        return inv[0, 0] * x + inv[0, 1] * y + inv[0, 2], inv[1, 0] * x + inv[1, 1] * y + inv[1, 2]
+
+    @property
+    def current_rotation_deg(self) -> float:
+        """Cumulative rotation of the frame last passed to :meth:`update` (deg)."""
+        return decompose(self._current, self.field_centre)[0]
+
+    def table(self) -> pd.DataFrame:
+        """The ``registration`` table (one row per frame)."""
+        return pd.DataFrame(self.rows, columns=REGISTRATION_COLUMNS)
+
+
+def register_points(frames_points: list[np.ndarray], views: list[np.ndarray], pixel_size_um: float,
+                    apex_xy_px=None, **kwargs) -> pd.DataFrame:
+    """Register a short series held in memory (convenience wrapper around :class:`Registrar`)."""
+    reg = Registrar(views[0].shape, pixel_size_um, **kwargs)
+    for t, (pts, v) in enumerate(zip(frames_points, views)):
+        reg.update(t, v, pts, None if apex_xy_px is None else apex_xy_px[t])
+    return reg.table()

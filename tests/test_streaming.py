@@ -1,0 +1,169 @@
+"""Stacks larger than memory: the pipeline streams frame by frame from a memory-mapped TIFF or a
+zarr array; OME-Zarr and zarr arrays are read with their scale."""
+
+from __future__ import annotations
+
+import gc
+import tracemalloc
+
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+
+from apextrack.errors import MetadataError
+from apextrack.pipeline import analyse
+from apextrack.stack import StackWarning, read_stack
+
+PIXEL_UM, INTERVAL_H, Z_UM = 1.0, 3.0, 4.0
+
+
+def _synth(n_frames, shape_zyx=(16, 128, 128), seed=1):
+    from apextrack.model import make_synthetic_stack
+
+    return make_synthetic_stack(n_frames=n_frames, shape_zyx=shape_zyx, pixel_size_um=PIXEL_UM,
+                                z_step_um=Z_UM, interval_h=INTERVAL_H, apex_radius_um=20, seed=seed)
+
+
+@pytest.fixture(scope="module")
+def long_tiff(tmp_path_factory):
+    """16 timepoints of 16×128×128 uint16 (8.4 MB), uncompressed ImageJ hyperstack."""
+    from apextrack.model import write_synthetic
+
+    d = tmp_path_factory.mktemp("long")
+    return write_synthetic(_synth(16), d / "glasshouse_apex.tif")["stack"]
+
+
+@pytest.fixture(scope="module")
+def warmed_up(tmp_path_factory, long_tiff):
+    """Run the pipeline once on a short stack so that imports and caches do not count as the
+    analysis' memory."""
+    from apextrack.model import write_synthetic
+
+    d = tmp_path_factory.mktemp("warm")
+    p = write_synthetic(_synth(3, (4, 64, 64)), d / "warm.tif")["stack"]
+    analyse(p, out=d / "res", progress=False, bootstrap_n=50)
+    gc.collect()
+    return True
+
+
+def _peak_of_analysis(stack, out, **kw) -> int:
+    gc.collect()
+    tracemalloc.start()
+    try:
+        analyse(stack, out=out, progress=False, bootstrap_n=100, **kw)
+        return tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+
+
+def _write_ome_zarr(path, data: np.ndarray, version: str, time_unit="hour", time_step=INTERVAL_H):
+    """An OME-Zarr image (OME-NGFF 0.4: zarr v2 with ``multiscales`` in the group attributes;
+    0.5: zarr v3 with them under ``ome``), one chunk per timepoint."""
+    import zarr
+
+    g = zarr.open_group(str(path), mode="w", zarr_format=2 if version == "0.4" else 3)
+    arr = g.create_array("0", shape=data.shape, chunks=(1,) + data.shape[1:], dtype=data.dtype)
+    arr[:] = data
+    ms = [{"version": version, "name": "apex",
+           "axes": [{"name": "t", "type": "time", "unit": time_unit},
+                    {"name": "z", "type": "space", "unit": "micrometer"},
+                    {"name": "y", "type": "space", "unit": "micrometer"},
+                    {"name": "x", "type": "space", "unit": "micrometer"}],
+           "datasets": [{"path": "0", "coordinateTransformations": [
+               {"type": "scale", "scale": [time_step, Z_UM, PIXEL_UM, PIXEL_UM]}]}]}]
+    omero = {"channels": [{"label": "reporter", "color": "00FF00", "window": {"start": 0, "end": 4000}}]}
+    if version == "0.4":
+        g.attrs.update({"multiscales": ms, "omero": omero})
+    else:
+        g.attrs.update({"ome": {"version": "0.5", "multiscales": ms, "omero": omero}})
+    return path
+
+
+def test_memory_mapped_stack_is_not_loaded_whole(long_tiff, warmed_up, tmp_path):
+    stack = read_stack(long_tiff)
+    assert isinstance(stack.data, np.memmap)
+    peak = _peak_of_analysis(stack, tmp_path / "res")
+    # the analysis (report included) holds far less than the 8.4 MB stack at any time
+    assert peak < stack.nbytes / 2, (peak, stack.nbytes)
+    assert (tmp_path / "res" / "report.html").exists()
+
+
+def test_peak_memory_does_not_grow_with_frames(long_tiff, warmed_up, tmp_path):
+    from apextrack.stack import from_array
+
+    mm = tifffile.memmap(long_tiff)
+    peaks = {}
+    for n in (4, 16):
+        stack = from_array(mm[:n], "TZYX", pixel_size_um=PIXEL_UM, interval_h=INTERVAL_H, z_step_um=Z_UM)
+        peaks[n] = _peak_of_analysis(stack, tmp_path / f"res{n}", report=False)
+    # 4× the frames: the peak grows only by the (small) tables, not by the frames
+    frame_bytes = mm[0].nbytes
+    assert peaks[16] - peaks[4] < 2 * frame_bytes, peaks
+
+
+def test_topview_file_is_written_frame_by_frame(long_tiff, warmed_up, tmp_path):
+    res = analyse(long_tiff, out=tmp_path / "res", progress=False, bootstrap_n=50, report=False)
+    with tifffile.TiffFile(tmp_path / "res" / "topview.tif") as tif:
+        s = tif.series[0]
+        assert s.axes == "TYX" and s.shape == (16, 128, 128) and s.dtype == np.float32
+        assert tif.imagej_metadata["finterval"] == pytest.approx(INTERVAL_H * 3600)
+        assert 1.0 / tif.pages[0].resolution[0] == pytest.approx(PIXEL_UM)
+        views = tif.asarray()
+    raw = tifffile.imread(long_tiff)
+    for t in (0, 7, 15):  # close to numpy's maximum over z (the top view may be registered)
+        assert np.corrcoef(views[t].ravel(), raw[t].max(axis=0).ravel())[0, 1] > 0.8
+    assert res.summary["n_frames"] == 16
+
+
+@pytest.mark.parametrize("version", ["0.4", "0.5"])
+def test_ome_zarr_is_read_with_its_scale_and_streams(long_tiff, warmed_up, tmp_path, version):
+    raw = tifffile.imread(long_tiff)
+    path = _write_ome_zarr(tmp_path / f"apex_{version}.zarr", raw, version)
+    stack = read_stack(path)
+    assert stack.axes == "TZYX" and stack.shape == raw.shape
+    assert stack.pixel_size_um == (PIXEL_UM, PIXEL_UM, Z_UM) and stack.interval_h == INTERVAL_H
+    assert stack.channel_names == ["reporter"] and not stack.warnings
+    assert np.array_equal(stack.timepoint(5), raw[5])
+    peak = _peak_of_analysis(stack, tmp_path / "res")
+    assert peak < stack.nbytes / 2, (peak, stack.nbytes)
+    # same pixels, same scale → the same detections as from the TIFF
+    from_tiff = analyse(long_tiff, out=None, progress=False, bootstrap_n=100)
+    from_zarr = pd.read_csv(tmp_path / "res" / "detections.csv")
+    pd.testing.assert_frame_equal(from_zarr[["frame", "x_um", "y_um"]],
+                                  from_tiff.detections[["frame", "x_um", "y_um"]].reset_index(drop=True),
+                                  check_dtype=False, rtol=1e-9)
+
+
+def test_ome_zarr_time_units(tmp_path):
+    small = np.zeros((3, 2, 16, 16), np.uint16)
+    # OME-NGFF axis units are UDUNITS-2 names: 180 minutes = 3 h
+    st = read_stack(_write_ome_zarr(tmp_path / "min.zarr", small, "0.4", "minute", 180.0))
+    assert st.interval_h == pytest.approx(3.0)
+    st = read_stack(_write_ome_zarr(tmp_path / "ms.zarr", small, "0.4", "millisecond", 3.6e6))
+    assert st.interval_h == pytest.approx(1.0)
+    # an unknown unit is not guessed silently
+    with pytest.warns(StackWarning, match="frame interval not in the file"):
+        st = read_stack(_write_ome_zarr(tmp_path / "odd.zarr", small, "0.4", "fortnight", 1.0))
+
+
+def test_plain_zarr_arrays(tmp_path):
+    import zarr
+
+    data = np.arange(3 * 2 * 8 * 8, dtype=np.uint16).reshape(3, 2, 8, 8)
+    a = zarr.create_array(str(tmp_path / "attr.zarr"), shape=data.shape, chunks=(1, 2, 8, 8), dtype=data.dtype)
+    a[:] = data
+    a.attrs["axes"] = "TZYX"
+    st = read_stack(tmp_path / "attr.zarr", pixel_size_um=0.5, z_step_um=2.0, interval_h=1.5)
+    assert st.axes == "TZYX" and np.array_equal(st.timepoint(2), data[2])
+    # zarr v3 dimension names (zarr specification v3, "dimension_names")
+    b = zarr.create_array(str(tmp_path / "named.zarr"), shape=(2, 8, 8, 3), chunks=(1, 8, 8, 3), dtype="u2",
+                          dimension_names=["t", "y", "x", "c"])
+    b[:] = np.arange(2 * 8 * 8 * 3, dtype=np.uint16).reshape(2, 8, 8, 3)
+    st = read_stack(tmp_path / "named.zarr", pixel_size_um=1.0, interval_h=1.0)
+    assert st.axes == "TCYX" and st.n_channels == 3
+    assert np.array_equal(st.frame(1, 2), b[1, :, :, 2].astype(np.float32))
+    # an array that does not say its axes is refused with a hint
+    c = zarr.create_array(str(tmp_path / "bare.zarr"), shape=(2, 8, 8), dtype="u2")
+    with pytest.raises(MetadataError, match="does not say its axes"):
+        read_stack(tmp_path / "bare.zarr")
