@@ -384,50 +384,68 @@ def centre_from_pattern(tracks: "pd.DataFrame", init_xy, min_primordia: int = 4,
 
     if tracks.empty:
         return None
-    df = tracks[["track_id", "frame", "x_um", "y_um"]].dropna()
-    cx0, cy0 = float(init_xy[0]), float(init_xy[1])
-    first = df.sort_values(["track_id", "frame"], kind="stable").drop_duplicates("track_id")
-    r_first = np.hypot(first["x_um"] - cx0, first["y_um"] - cy0)
-    first = first.assign(_r=r_first.to_numpy())
-    order = first.sort_values(["frame", "_r"], ascending=[True, False], kind="stable")["track_id"].to_numpy()
-    rank = {int(t): i for i, t in enumerate(order)}
-    df = df.assign(rank=df["track_id"].map(rank).to_numpy())
-    pairs_a, pairs_b = [], []
-    for _, g in df.groupby("frame", sort=True):
-        if len(g) < min_primordia:
-            continue
-        g = g.sort_values("rank", kind="stable")
-        rk = g["rank"].to_numpy()
-        idx = g.index.to_numpy()
-        nxt = np.nonzero(np.diff(rk) == 1)[0]
-        pairs_a.extend(idx[nxt])
-        pairs_b.extend(idx[nxt + 1])
-    if len(pairs_a) < 3:
-        return None
-    xa, ya = df.loc[pairs_a, "x_um"].to_numpy(float), df.loc[pairs_a, "y_um"].to_numpy(float)
-    xb, yb = df.loc[pairs_b, "x_um"].to_numpy(float), df.loc[pairs_b, "y_um"].to_numpy(float)
+    df0 = tracks[["track_id", "frame", "x_um", "y_um"]].dropna()
+    first = df0.sort_values(["track_id", "frame"], kind="stable").drop_duplicates("track_id")
 
-    def diffs(cx, cy):
-        ta = np.arctan2(-(ya - cy), xa - cx)
-        tb = np.arctan2(-(yb - cy), xb - cx)
-        ra = np.hypot(xa - cx, ya - cy)
-        rb = np.hypot(xb - cx, yb - cy)
-        return _wrap_rad(tb - ta), np.log(np.maximum(rb, 1e-6)) - np.log(np.maximum(ra, 1e-6))
+    def ranks_about(cx, cy):
+        f = first.assign(_r=np.hypot(first["x_um"] - cx, first["y_um"] - cy).to_numpy())
+        order = f.sort_values(["frame", "_r"], ascending=[True, False], kind="stable")["track_id"].to_numpy()
+        return {int(t): i for i, t in enumerate(order)}
 
-    dth, dlr = diffs(cx0, cy0)
-    alpha0 = float(np.angle(np.mean(np.exp(1j * dth))))
-    m0 = float(np.median(dlr))
+    def fit_with(rank, start):
+        df = df0.assign(rank=df0["track_id"].map(rank).to_numpy())
+        pairs_a, pairs_b = [], []
+        for _, g in df.groupby("frame", sort=True):
+            if len(g) < min_primordia:
+                continue
+            g = g.sort_values("rank", kind="stable")
+            rk = g["rank"].to_numpy()
+            idx = g.index.to_numpy()
+            nxt = np.nonzero(np.diff(rk) == 1)[0]
+            pairs_a.extend(idx[nxt])
+            pairs_b.extend(idx[nxt + 1])
+        if len(pairs_a) < 3:
+            return None
+        xa, ya = df.loc[pairs_a, "x_um"].to_numpy(float), df.loc[pairs_a, "y_um"].to_numpy(float)
+        xb, yb = df.loc[pairs_b, "x_um"].to_numpy(float), df.loc[pairs_b, "y_um"].to_numpy(float)
 
-    def resid(p):
-        dt, dl = diffs(p[0], p[1])
-        return np.concatenate([_wrap_rad(dt - p[2]), dl - p[3]])
+        def diffs(cx, cy):
+            ta = np.arctan2(-(ya - cy), xa - cx)
+            tb = np.arctan2(-(yb - cy), xb - cx)
+            ra = np.hypot(xa - cx, ya - cy)
+            rb = np.hypot(xb - cx, yb - cy)
+            return _wrap_rad(tb - ta), np.log(np.maximum(rb, 1e-6)) - np.log(np.maximum(ra, 1e-6))
 
-    fit = least_squares(resid, [cx0, cy0, alpha0, m0], loss="soft_l1", f_scale=robust,
-                        x_scale=[5.0, 5.0, 0.1, 0.05])
-    res = resid(fit.x)
-    return {"x_um": float(fit.x[0]), "y_um": float(fit.x[1]),
-            "angle_deg": float(np.degrees(fit.x[2])), "log_ratio": float(fit.x[3]),
-            "rms_rad": float(np.sqrt(np.mean(res ** 2))), "n_pairs": int(len(pairs_a))}
+        dth, dlr = diffs(*start)
+        alpha0 = float(np.angle(np.mean(np.exp(1j * dth))))
+        m0 = float(np.median(dlr))
+
+        def resid(p):
+            dt, dl = diffs(p[0], p[1])
+            return np.concatenate([_wrap_rad(dt - p[2]), dl - p[3]])
+
+        fit = least_squares(resid, [start[0], start[1], alpha0, m0], loss="soft_l1", f_scale=robust,
+                            x_scale=[5.0, 5.0, 0.1, 0.05])
+        res = resid(fit.x)
+        return {"x_um": float(fit.x[0]), "y_um": float(fit.x[1]),
+                "angle_deg": float(np.degrees(fit.x[2])), "log_ratio": float(fit.x[3]),
+                "rms_rad": float(np.sqrt(np.mean(res ** 2))), "n_pairs": int(len(pairs_a))}
+
+    # the birth order of primordia already present in the first frame depends on the centre
+    # (farther = older): re-rank about each new centre until the order no longer changes
+    start = (float(init_xy[0]), float(init_xy[1]))
+    rank = ranks_about(*start)
+    result = None
+    for _ in range(6):
+        result = fit_with(rank, start)
+        if result is None:
+            return None
+        start = (result["x_um"], result["y_um"])
+        new_rank = ranks_about(*start)
+        if new_rank == rank:
+            break
+        rank = new_rank
+    return result
 
 
 def choose_centres(tracks: "pd.DataFrame", dome_centres: "pd.DataFrame", method: str = "auto",

@@ -208,7 +208,41 @@ def _run_view(args) -> int:
     return 0
 
 
-COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_view]
+# ----------------------------------------------------------------------------------------------
+# score
+# ----------------------------------------------------------------------------------------------
+def _add_score(sub):
+    p = sub.add_parser("score", help="score a results folder against a ground-truth table",
+                       description="Measure tracking and birth-order accuracy of a results folder "
+                                   "against a ground truth (one row per primordium per frame): CTC "
+                                   "DET/TRA, particle-tracking alpha/beta/Jaccard, MOTA, IDF1, the "
+                                   "fraction of exact birth ranks and Kendall's tau. Prints them and "
+                                   "writes scores.json and scores.csv.")
+    p.add_argument("results", help="results folder written by 'apextrack analyse'")
+    p.add_argument("truth", help="ground-truth CSV (e.g. <stem>_truth.csv of a synthetic stack)")
+    p.add_argument("--gate", type=float, dest="gate_um", metavar="UM", default=None,
+                   help="matching distance in µm (default: the scoring module's default)")
+    p.add_argument("--out", "-o", default=None,
+                   help="folder or .json/.csv name for the scores (default: the results folder)")
+    p.set_defaults(func=_run_score)
+
+
+def _run_score(args) -> int:
+    from .scoring import DEFAULT_GATE_UM, score_results, write_scores
+
+    gate = DEFAULT_GATE_UM if args.gate_um is None else args.gate_um
+    scores = score_results(args.results, args.truth, gate_um=gate)
+    paths = write_scores(scores, args.out if args.out is not None else args.results)
+    for key in sorted(scores):
+        v = scores[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            continue
+        print(f"{key:32s} {v:.6g}" if isinstance(v, float) else f"{key:32s} {v}")
+    print(f"scores written to {', '.join(str(p) for p in paths)}")
+    return 0
+
+
+COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_view, _add_score]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -42,7 +42,7 @@ QUALITY_COLUMNS = ["track_n_frames", "track_gaps", "track_mean_snr", "track_moti
 
 @dataclass
 class MotionModel:
-    """Spiral-similarity motion of the primordia about a linearly drifting apex centre.
+    """Spiral-similarity motion of the primordia about a moving apex centre.
 
     Attributes
     ----------
@@ -51,25 +51,28 @@ class MotionModel:
     omega_rad_per_h : float
         Rotation rate ω of the specimen in image coordinates (rad/h; positive turns x towards
         +y, i.e. clockwise on the displayed image).
-    centre0 : complex
-        Apex centre ``x + i·y`` (µm) at ``t_ref_h``.
-    drift : complex
-        Drift of the centre (µm/h).
+    frame_times_h : ndarray
+        Times of the frames.
+    frame_centres : ndarray of complex
+        Apex centre ``x + i·y`` (µm) in each frame (between frames: linear interpolation).
     t_ref_h : float
+        Reference time of the offsets.
     rim_radius_um : float
         Radius of the circle on which new primordia appear (NaN when not fitted).
     rms_um : float
-        Root-mean-square position residual of the fit.
+        Root-mean-square position residual of the fit (per axis).
     centre_sd_um : float
-        Standard error of the centre (per axis) from the fit.
+        Standard error of the centre (per axis, median over frames).
     n_tracks, n_new : int
         Tracks used and new primordia in the rim constraint.
+    offsets : dict
+        Offset of each track from the centre at ``t_ref_h`` (complex µm).
     """
 
     gamma_per_h: float
     omega_rad_per_h: float
-    centre0: complex
-    drift: complex
+    frame_times_h: np.ndarray
+    frame_centres: np.ndarray
     t_ref_h: float
     rim_radius_um: float = math.nan
     rms_um: float = math.nan
@@ -79,8 +82,12 @@ class MotionModel:
     offsets: dict = field(default_factory=dict, repr=False)
 
     def centre(self, t_h) -> np.ndarray:
-        """Complex centre ``x + i·y`` at time(s) ``t_h``."""
-        return self.centre0 + self.drift * (np.asarray(t_h, float) - self.t_ref_h)
+        """Complex centre ``x + i·y`` at time(s) ``t_h`` (interpolated between frames)."""
+        t = np.asarray(t_h, float)
+        ft, fc = self.frame_times_h, self.frame_centres
+        if len(ft) == 1:
+            return np.full(t.shape, fc[0], complex)[()]
+        return (np.interp(t, ft, fc.real) + 1j * np.interp(t, ft, fc.imag))[()]
 
     def predict(self, x, y, t_from_h, t_to_h) -> tuple[np.ndarray, np.ndarray]:
         """Where primordia at ``(x, y)`` at ``t_from_h`` are at ``t_to_h``."""
@@ -92,35 +99,64 @@ class MotionModel:
 
     def centres_table(self, frames, times_h) -> pd.DataFrame:
         """Centre per frame: ``frame``, ``time_h``, ``x_um``, ``y_um``, ``centre_sd_um``."""
-        c = self.centre(np.asarray(times_h, float))
+        c = np.atleast_1d(self.centre(np.asarray(times_h, float)))
         return pd.DataFrame({"frame": np.asarray(frames, np.int64), "time_h": np.asarray(times_h, float),
                              "x_um": c.real, "y_um": c.imag,
                              "centre_sd_um": np.full(len(c), self.centre_sd_um)})
 
     def to_dict(self) -> dict:
-        """Plain summary (JSON-able)."""
+        """Plain summary (JSON-able): centre in the first frame and mean drift of the centre."""
+        ft, fc = self.frame_times_h, self.frame_centres
+        drift = complex(np.polyfit(ft, fc.real, 1)[0], np.polyfit(ft, fc.imag, 1)[0]) if len(ft) > 1 else 0j
         return {"growth_rate_per_h": self.gamma_per_h, "rotation_deg_per_h": math.degrees(-self.omega_rad_per_h),
-                "centre_x_um": self.centre0.real, "centre_y_um": self.centre0.imag,
-                "drift_x_um_per_h": self.drift.real, "drift_y_um_per_h": self.drift.imag,
-                "t_ref_h": self.t_ref_h, "rim_radius_um": self.rim_radius_um, "rms_um": self.rms_um,
+                "centre_x_um": float(fc[0].real), "centre_y_um": float(fc[0].imag),
+                "drift_x_um_per_h": drift.real, "drift_y_um_per_h": drift.imag,
+                "rim_radius_um": self.rim_radius_um, "rms_um": self.rms_um,
                 "centre_sd_um": self.centre_sd_um, "n_tracks": self.n_tracks, "n_new": self.n_new}
 
 
-def _profiled_fit(t, z, tid, n, t_ref, gamma, omega):
-    """Linear least squares of z = c0 + d·(t − t_ref) + exp(λ(t − t_ref))·a_k for fixed λ."""
+def _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega):
+    """Design matrix of z = c_f + exp(λ(t − t_ref))·a_k: one column per frame, one per track."""
     e = np.exp((gamma + 1j * omega) * (t - t_ref))
-    a = np.zeros((len(t), 2 + n), complex)
-    a[:, 0] = 1.0
-    a[:, 1] = t - t_ref
-    a[np.arange(len(t)), 2 + tid] = e
+    a = np.zeros((len(t), n_frames + n), complex)
+    rows = np.arange(len(t))
+    a[rows, fidx] = 1.0
+    a[rows, n_frames + tid] = e
+    return a
+
+
+def _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, gamma, omega):
+    """Least squares of the centres and offsets for a fixed λ = γ + iω."""
+    a = _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega)
     coef, *_ = np.linalg.lstsq(a, z, rcond=None)
     res = z - a @ coef
     return coef, float(np.sum(np.abs(res) ** 2))
 
 
+def _fill_centres(centres: np.ndarray, has_data: np.ndarray, times: np.ndarray) -> np.ndarray:
+    """Frames without a fitted centre get one interpolated from the others."""
+    if has_data.all() or not has_data.any():
+        return centres
+    out = centres.copy()
+    t_ok = times[has_data]
+    out[~has_data] = (np.interp(times[~has_data], t_ok, centres[has_data].real)
+                      + 1j * np.interp(times[~has_data], t_ok, centres[has_data].imag))
+    return out
+
+
 def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float = 1.0,
-               rim: bool = True) -> MotionModel | None:
-    """Fit the spiral-similarity motion of the primordia (growth, rotation, drift, centre).
+               rim: bool = True, centre_hint: pd.DataFrame | None = None) -> MotionModel | None:
+    """Fit the spiral-similarity motion of the primordia (growth, rotation, centre per frame).
+
+    Every detection of a track k in frame f is modelled as ``z = c_f + exp(λ(t_f − t_ref))·a_k``
+    with λ = γ + iω common to all primordia: γ the relative radial growth rate, ω the rotation
+    rate, c_f the apex centre in frame f (free per frame, so any drift, and any error left by
+    registration, is absorbed). For a given λ the model is linear in the centres and offsets;
+    λ is found by a Nelder–Mead search on the residual, leaving out detections far off the
+    model (a blob cut by the image border, a wrong link) and fitting again. The motion fixes the
+    centres only up to one common vector b (c_f + exp(λ(t_f − t_ref))·b with a_k − b fits as
+    well); the primordia seen appearing, which are born on a circle of radius R about the
+    centre, fix b (least squares with a soft-L1 loss on both terms).
 
     Parameters
     ----------
@@ -131,8 +167,11 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     max_rate_per_h : float
         Largest |γ| and |ω| considered.
     rim : bool
-        Add the constraint that new primordia (first seen after the first frame, innermost in
-        their frame) appear on a circle about the centre.
+        Add the rim constraint (needs three primordia seen appearing).
+    centre_hint : DataFrame, optional
+        A rough centre per frame (``frame``, ``x_um``, ``y_um``, e.g. the dome seen in the
+        image): used to recognise the primordia seen appearing, and to fix the common vector
+        when the rim cannot be used.
 
     Returns
     -------
@@ -144,13 +183,11 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     --------
     >>> t = np.repeat(np.arange(5) * 2.0, 3)
     >>> k = np.tile(np.arange(3), 5)
-    >>> a = 20 * np.exp(2j * np.pi * k / 3)
-    >>> z = 50 + 50j + np.exp(0.05 * t) * a
+    >>> z = 50 + 50j + np.exp(0.05 * t) * 20 * np.exp(2j * np.pi * k / 3)
     >>> df = pd.DataFrame({"track_id": k, "frame": (t / 2).astype(int), "time_h": t,
     ...                    "x_um": z.real, "y_um": z.imag})
-    >>> m = fit_motion(df, rim=False)
-    >>> round(m.gamma_per_h, 4), round(m.centre0.real, 2), round(m.centre0.imag, 2)
-    (0.05, 50.0, 50.0)
+    >>> round(fit_motion(df, rim=False).gamma_per_h, 4)
+    0.05
     """
     from scipy.optimize import least_squares, minimize
 
@@ -159,21 +196,24 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     groups = [g for _, g in tracks.groupby("track_id", sort=True) if g["time_h"].nunique() >= min_frames]
     if len(groups) < 3:
         return None
-    times = np.sort(tracks["time_h"].unique())
-    dt = float(np.median(np.diff(times))) if len(times) > 1 else 1.0
-    span = max(float(times[-1] - times[0]), dt)
+    frame_list = np.sort(tracks["frame"].unique())
+    frame_time = tracks.groupby("frame")["time_h"].first().reindex(frame_list).to_numpy(float)
+    n_f = len(frame_list)
+    dt = float(np.median(np.diff(frame_time))) if n_f > 1 else 1.0
+    span = max(float(frame_time[-1] - frame_time[0]), dt)
+    t_ref = float(np.mean(frame_time))
 
-    def prepare(gs):
-        tid = np.concatenate([np.full(len(g), i) for i, g in enumerate(gs)])
-        t = np.concatenate([g["time_h"].to_numpy(float) for g in gs])
-        z = np.concatenate([g["x_um"].to_numpy(float) + 1j * g["y_um"].to_numpy(float) for g in gs])
-        return tid, t, z, float(np.mean(t))
+    tid_all = np.concatenate([np.full(len(g), i) for i, g in enumerate(groups)])
+    t_all = np.concatenate([g["time_h"].to_numpy(float) for g in groups])
+    f_all = np.searchsorted(frame_list, np.concatenate([g["frame"].to_numpy() for g in groups]))
+    z_all = np.concatenate([g["x_um"].to_numpy(float) + 1j * g["y_um"].to_numpy(float) for g in groups])
+    ids_all = np.array([g["track_id"].iloc[0] for g in groups])
 
-    def fit_lambda(tid, t, z, t_ref, n):
+    def fit_lambda(tid, t, z, fidx, n):
         def sse(p):
             if abs(p[0]) > max_rate_per_h or abs(p[1]) > max_rate_per_h:
                 return 1e300
-            return _profiled_fit(t, z, tid, n, t_ref, p[0], p[1])[1]
+            return _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, p[0], p[1])[1]
 
         best = None
         for growth_per_frame in (1.01, 1.04, 1.10):
@@ -183,77 +223,83 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                 best = r
         return float(best.x[0]), float(best.x[1])
 
-    # a robust start: detections far off the model (a wrong link, a blob cut by the image
-    # border) are left out and the fit is repeated
-    tid_all, t_all, z_all, _ = prepare(groups)
-    ids_all = np.array([g["track_id"].iloc[0] for g in groups])
+    # a robust start: detections far off the model are left out and the fit is repeated
     keep = np.ones(len(t_all), bool)
-    for _ in range(4):
+    for it in range(5):
         codes, uniq = pd.factorize(tid_all[keep], sort=True)
-        tid, t, z = codes, t_all[keep], z_all[keep]
-        n, t_ref = len(uniq), float(np.mean(t_all[keep]))
-        gamma, omega = fit_lambda(tid, t, z, t_ref, n)
-        coef, s = _profiled_fit(t, z, tid, n, t_ref, gamma, omega)
-        # residuals of every detection (also the ones left out) from the fitted model
+        tid, t, z, fidx, n = codes, t_all[keep], z_all[keep], f_all[keep], len(uniq)
+        gamma, omega = fit_lambda(tid, t, z, fidx, n)
+        coef, s = _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, gamma, omega)
         pos = np.searchsorted(uniq, tid_all)
         known = (pos < n) & (uniq[np.minimum(pos, n - 1)] == tid_all)
-        zm = coef[0] + coef[1] * (t_all - t_ref) + np.exp((gamma + 1j * omega) * (t_all - t_ref)) \
-            * np.where(known, coef[2 + np.minimum(pos, n - 1)], np.nan)
+        zm = coef[f_all] + np.exp((gamma + 1j * omega) * (t_all - t_ref)) \
+            * np.where(known, coef[n_f + np.minimum(pos, n - 1)], np.nan)
         res = np.abs(z_all - zm)
         limit = max(4.0 * float(np.nanmedian(res[keep])), 0.5)
         new_keep = np.nan_to_num(res, nan=np.inf) <= limit
         counts = np.bincount(tid_all[new_keep], minlength=len(groups))
         new_keep &= counts[tid_all] >= min(min_frames, 3)
-        if np.array_equal(new_keep, keep) or len(np.unique(tid_all[new_keep])) < 3:
+        if np.array_equal(new_keep, keep) or len(np.unique(tid_all[new_keep])) < 3 or it == 4:
             break
         keep = new_keep
-    groups = [groups[i] for i in uniq]
-    ids_all = ids_all[uniq]
-    ids = list(ids_all)
+    ids = list(ids_all[uniq])
     if not gamma > 0:
         return None
-    rms = math.sqrt(s / max(len(t) - 2 - n - 2, 1) / 2)
-    model = MotionModel(gamma, omega, complex(coef[0]), complex(coef[1]), t_ref, rms_um=rms, n_tracks=n,
-                        offsets={k: complex(a) for k, a in zip(ids, coef[2:])})
-    cov_c = _centre_sd_profiled(t, tid, n, t_ref, gamma, omega, rms)
-    model.centre_sd_um = cov_c
+    has_data = np.bincount(fidx, minlength=n_f) > 0
+    n_par = int(has_data.sum()) + n - 1 + 2
+    rms = math.sqrt(s / max(len(t) - n_par, 1) / 2)
+    model = MotionModel(gamma, omega, frame_time, _fill_centres(coef[:n_f], has_data, frame_time), t_ref,
+                        rms_um=rms, n_tracks=n, offsets={k: complex(a) for k, a in zip(ids, coef[n_f:])})
+    hinted = None
+    if centre_hint is not None and len(centre_hint):
+        h = centre_hint.set_index("frame").reindex(frame_list)
+        hz = h["x_um"].to_numpy(float) + 1j * h["y_um"].to_numpy(float)
+        ok = np.isfinite(hz)
+        if ok.any():
+            # the common vector b that brings the motion centres closest to the hint
+            e = np.exp((gamma + 1j * omega) * (frame_time - t_ref))
+            b = complex(np.sum(np.conj(e[ok]) * (hz[ok] - model.frame_centres[ok])) / np.sum(np.abs(e[ok]) ** 2))
+            hinted = MotionModel(gamma, omega, frame_time, model.frame_centres + e * b, t_ref, rms_um=rms,
+                                 n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()})
+            model = hinted
     if not rim:
         return model
 
-    # rim constraint: the innermost primordia that appear after the first frame
+    # rim constraint from the primordia seen appearing
     first = tracks.sort_values(["track_id", "frame"], kind="stable").drop_duplicates("track_id")
-    f0 = int(tracks["frame"].min())
+    f0 = int(frame_list[0])
     sigma_m = max(rms, 0.05)
-    inside = _inside_hull_of_frame(tracks, first)
+    inside = _inside_hull_of_frame(tracks, first) if hinted is None else None
+    ff_idx = np.searchsorted(frame_list, first["frame"].to_numpy())
+    zf = first["x_um"].to_numpy(float) + 1j * first["y_um"].to_numpy(float)
     for it in range(4):
         cen = model.centre(tracks["time_h"].to_numpy(float))
         r_all = np.abs(tracks["x_um"].to_numpy(float) + 1j * tracks["y_um"].to_numpy(float) - cen)
         r_min = pd.Series(r_all, index=tracks.index).groupby(tracks["frame"]).min()
-        rf = np.abs(first["x_um"].to_numpy(float) + 1j * first["y_um"].to_numpy(float)
-                    - model.centre(first["time_h"].to_numpy(float)))
+        rf = np.abs(zf - model.frame_centres[ff_idx])
         near_rim = rf <= r_min.reindex(first["frame"]).to_numpy() * math.exp(model.gamma_per_h * dt * 1.5)
         # first round: the centre may still be far off, so a birth is recognised as a track
         # starting after the first frame inside the other primordia of its frame (tracks
         # entering the field of view start on the outside)
-        new = (first["frame"].to_numpy() > f0) & (inside if it == 0 else near_rim)
+        new = (first["frame"].to_numpy() > f0) & (inside if (it == 0 and hinted is None) else near_rim)
         if new.sum() < 3:
             return model
-        zn = first["x_um"].to_numpy(float)[new] + 1j * first["y_um"].to_numpy(float)[new]
-        tn = first["time_h"].to_numpy(float)[new]
+        zn, fn = zf[new], ff_idx[new]
         # the first sighting falls anywhere in the interval after emergence: r spreads by exp(γΔt)
-        sigma_r = max(float(np.median(rf[new])) * gamma * dt / math.sqrt(12.0), sigma_m)
+        sigma_r = max(float(np.median(rf[new])) * model.gamma_per_h * dt / math.sqrt(12.0), sigma_m)
         a0 = np.array([model.offsets[k] for k in ids])
-        p0 = np.concatenate([[model.gamma_per_h, model.omega_rad_per_h, model.centre0.real, model.centre0.imag,
-                              model.drift.real, model.drift.imag, float(np.median(rf[new]))],
+        c0 = model.frame_centres
+        p0 = np.concatenate([[model.gamma_per_h, model.omega_rad_per_h, float(np.median(rf[new]))],
+                             np.column_stack([c0.real, c0.imag]).ravel(),
                              np.column_stack([a0.real, a0.imag]).ravel()])
+        k0 = 3 + 2 * n_f
 
         def resid(p):
-            c0 = p[2] + 1j * p[3]
-            d = p[4] + 1j * p[5]
-            a = p[7::2] + 1j * p[8::2]
-            zm = c0 + d * (t - t_ref) + np.exp((p[0] + 1j * p[1]) * (t - t_ref)) * a[tid]
+            c = p[3:k0:2] + 1j * p[4:k0:2]
+            a = p[k0::2] + 1j * p[k0 + 1::2]
+            zm = c[fidx] + np.exp((p[0] + 1j * p[1]) * (t - t_ref)) * a[tid]
             rm = (z - zm) / sigma_m
-            rr = (np.abs(zn - c0 - d * (tn - t_ref)) - p[6]) / sigma_r
+            rr = (np.abs(zn - c[fn]) - p[2]) / sigma_r
             return np.concatenate([rm.real, rm.imag, rr])
 
         sol = least_squares(resid, p0, loss="soft_l1", f_scale=3.0, x_scale="jac")
@@ -264,15 +310,21 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         scale = float(np.sum(sol.fun ** 2) / dof)
         try:
             cov = np.linalg.pinv(sol.jac.T @ sol.jac) * scale
-            csd = float(np.sqrt(max((cov[2, 2] + cov[3, 3]) / 2.0, 0.0)))
+            var_c = (np.diag(cov)[3:k0:2] + np.diag(cov)[4:k0:2]) / 2.0
+            csd = float(np.sqrt(max(float(np.median(var_c[has_data])), 0.0)))
         except np.linalg.LinAlgError:
             csd = math.nan
+        centres = p[3:k0:2] + 1j * p[4:k0:2]
+        r_med = float(np.median(np.abs(z - centres[fidx])))
+        if not (0 < p[2] < r_med):
+            # the circle found is not an inner rim: keep the model without it
+            return model
         res_m = sol.fun[: 2 * len(t)] * sigma_m
-        model = MotionModel(float(p[0]), float(p[1]), complex(p[2], p[3]), complex(p[4], p[5]), t_ref,
-                            rim_radius_um=float(p[6]),
+        model = MotionModel(float(p[0]), float(p[1]), frame_time, _fill_centres(centres, has_data, frame_time),
+                            t_ref, rim_radius_um=float(p[2]),
                             rms_um=float(np.sqrt(np.sum(res_m ** 2) / max(len(t), 1) / 2)),
                             centre_sd_um=csd, n_tracks=n, n_new=int(new.sum()),
-                            offsets={k: complex(p[7 + 2 * i], p[8 + 2 * i]) for i, k in enumerate(ids)})
+                            offsets={k: complex(p[k0 + 2 * i], p[k0 + 1 + 2 * i]) for i, k in enumerate(ids)})
     return model
 
 
@@ -293,20 +345,6 @@ def _inside_hull_of_frame(tracks: pd.DataFrame, first: pd.DataFrame) -> np.ndarr
         except QhullError:
             out[i] = False
     return out
-
-
-def _centre_sd_profiled(t, tid, n, t_ref, gamma, omega, rms) -> float:
-    """Standard error of c0 (per axis) of the linear fit at fixed λ."""
-    e = np.exp((gamma + 1j * omega) * (t - t_ref))
-    a = np.zeros((len(t), 2 + n), complex)
-    a[:, 0] = 1.0
-    a[:, 1] = t - t_ref
-    a[np.arange(len(t)), 2 + tid] = e
-    try:
-        cov = np.linalg.pinv(a.conj().T @ a)
-    except np.linalg.LinAlgError:
-        return math.nan
-    return float(rms * np.sqrt(abs(cov[0, 0])))
 
 
 # ----------------------------------------------------------------------------- linking
@@ -463,7 +501,7 @@ def track_quality(tracks: pd.DataFrame, motion: MotionModel | None = None, min_t
 
 def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 2, *,
                 jump_um: float | None = None, min_track_frames: int = 2,
-                growth_aware: bool = True) -> tuple[pd.DataFrame, dict]:
+                growth_aware: bool = True, centre_hint: pd.DataFrame | None = None) -> tuple[pd.DataFrame, dict]:
     """Link detections into tracks, growth-aware, with jump splitting and quality columns.
 
     1. Nearest-neighbour linking (:func:`link_detections` without a model).
@@ -488,6 +526,8 @@ def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 
         Tracks with fewer detections are flagged ``short``.
     growth_aware : bool
         False: nearest-neighbour linking only.
+    centre_hint : DataFrame, optional
+        Rough centre per frame for :func:`fit_motion`.
 
     Returns
     -------
@@ -503,10 +543,10 @@ def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 
                   "memory": int(memory), "jump_um": jump}
     model = None
     if growth_aware and not tracks.empty:
-        model = fit_motion(tracks)
+        model = fit_motion(tracks, centre_hint=centre_hint)
         if model is not None:
             tracks2 = link_detections(detections, search_range_um, memory, motion=model)
-            model2 = fit_motion(tracks2)
+            model2 = fit_motion(tracks2, centre_hint=centre_hint)
             tracks = tracks2
             model = model2 if model2 is not None else model
             info["method"] = "growth-aware prediction (spiral similarity about a drifting centre)"

@@ -483,7 +483,8 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
 
         t0 = time.perf_counter()
         tracks, link_info = link_tracks(detections, s.link_search_um, s.link_memory, jump_um=s.link_jump_um,
-                                        min_track_frames=s.min_track_frames, growth_aware=s.link_growth_aware)
+                                        min_track_frames=s.min_track_frames, growth_aware=s.link_growth_aware,
+                                        centre_hint=centres[["frame", "x_um", "y_um"]])
         motion = link_info.pop("model", None)
         centres, centre_info = choose_centres(tracks, centres, s.centre_method, s.centre_um)
         if (s.centre_um is None and s.centre_method in ("auto", "motion") and motion is not None

@@ -97,8 +97,9 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
 def dome_side(binned: np.ndarray) -> int:
     """+1 if the dome bulges towards increasing slice index, −1 otherwise.
 
-    The intensity-weighted mean slice of every column is fitted by ``a + b·x + c·y + d·ρ²``;
-    a cap (``d < 0``) faces increasing z.
+    The intensity-weighted mean slice of every column is fitted by ``a + b·x + c·y + d·ρ²``
+    (least squares, refitted once without outlying columns); a cap (``d < 0``) faces
+    increasing z.
     """
     nz = binned.shape[0]
     bg = np.percentile(binned, 5)
@@ -111,6 +112,11 @@ def dome_side(binned: np.ndarray) -> int:
     iy, ix = np.nonzero(ok)
     a = np.column_stack([np.ones_like(ix, float), ix, iy, (ix - ix.mean()) ** 2 + (iy - iy.mean()) ** 2])
     coef, *_ = np.linalg.lstsq(a, zc, rcond=None)
+    # one trimmed refit: a few columns of bright deep signal must not decide
+    res = zc - a @ coef
+    good = np.abs(res - np.median(res)) <= 2.5 * 1.4826 * np.median(np.abs(res - np.median(res))) + 1e-9
+    if good.sum() >= 6:
+        coef, *_ = np.linalg.lstsq(a[good], zc[good], rcond=None)
     return 1 if coef[3] <= 0 else -1
 
 
@@ -128,7 +134,8 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
         Side the dome faces; ``auto`` decides from the data (:func:`dome_side`).
     rel_level : float
         A peak counts when it rises above ``rel_level`` of the column's range over the
-        volume's background.
+        volume's background (the range capped at the median column's, so that bright deep
+        signal does not hide a fainter surface above it).
 
     Returns
     -------
@@ -162,7 +169,10 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     bg = float(np.percentile(p, 5))
     top = p.max(axis=0)
     noise = 1.4826 * float(np.median(np.abs(p - np.median(p)))) + 1e-9
-    thr = bg + rel_level * (top - bg)
+    # the level a peak must reach: relative to the column's own top, but never above the
+    # typical column top, so that a bright deep spot does not hide the surface above it
+    typical = float(np.median(top[top - bg > 3 * noise])) if np.any(top - bg > 3 * noise) else float(top.max())
+    thr = bg + rel_level * (np.minimum(top, typical) - bg)
     # peaks: not lower than either neighbour along z (edges count as one-sided peaks)
     up_n = np.concatenate([p[1:], np.full((1,) + p.shape[1:], -np.inf, np.float32)])
     dn_n = np.concatenate([np.full((1,) + p.shape[1:], -np.inf, np.float32), p[:-1]])

@@ -213,9 +213,11 @@ def load(path: str | Path, base: Settings | None = None) -> Settings:
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
-        raise SettingsError("settings file not found", path) from None
+        raise SettingsError("settings file not found", path,
+                            "check the path, or write one with 'apextrack settings --write FILE.toml'") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise SettingsError(f"not a valid TOML file ({exc})", path) from None
+        raise SettingsError(f"not a valid TOML file ({exc})", path,
+                            "each line must read 'name = value'; 'apextrack settings --write' shows the format") from None
     if "settings" in raw and isinstance(raw["settings"], dict):
         raw = raw["settings"]
     # TOML has no null: the string "none" (or "") stands for "not set"

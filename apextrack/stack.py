@@ -410,7 +410,7 @@ def _read_tiff(path: Path, time_axis: str | None) -> Stack:
     import tifffile
 
     if path.stat().st_size == 0:
-        raise InputError("file is empty", path)
+        raise InputError("file is empty (0 bytes)", path, "copy the file again from the microscope or archive")
     with _TifffileLog() as log:
         try:
             tif = tifffile.TiffFile(path)
@@ -675,7 +675,7 @@ def _read_zarr(path: Path, axes: str | None, time_axis: str | None) -> Stack:
                     tu = str(units[i] or "hour").lower()
                     factor = _UNIT_H.get(tu, _UNIT_H.get(tu.rstrip("s"), _UNIT_H_LONG.get(tu.rstrip("s"))))
                     interval = None if factor is None else float(scale[i]) * factor  # unknown unit: not guessed
-        omero = attrs.get("omero", {})
+        omero = attrs.get("omero") or attrs.get("ome", {}).get("omero") or {}
         if omero.get("channels"):
             names = [str(c.get("label", f"ch{i}")) for i, c in enumerate(omero["channels"])]
     else:

@@ -59,6 +59,11 @@ SCHEMA: dict[str, list[Column]] = {
         _c("track_id", "int", "", "track identifier (one per primordium)"),
         _c("r_um", "float", "µm", "distance from the apex centre"),
         _c("theta_deg", "float", "deg", "azimuth about the apex centre, counter-clockwise on the displayed image, [0, 360)"),
+        _c("track_n_frames", "int", "", "number of detections in this track", required=False),
+        _c("track_gaps", "int", "frames", "frames missed inside this track (bridged by the linking memory)", required=False),
+        _c("track_mean_snr", "float", "", "mean signal-to-noise ratio of the track's detections", required=False),
+        _c("track_motion_residual_um", "float", "µm", "RMS distance of the track's detections from where the fitted motion predicts them", required=False),
+        _c("track_flags", "str", "", "quality marks separated by ';': short, split (cut at a jump), poor_fit", required=False),
     ],
     "primordia": [
         _c("birth_rank", "int", "", "order of birth, 1 = first born in the record"),
@@ -72,6 +77,11 @@ SCHEMA: dict[str, list[Column]] = {
         _c("co_initiated", "bool", "", "true when the birth order with a neighbour cannot be told apart"),
         _c("emergence_time_sd_h", "float", "h", "uncertainty (1 SD) of the emergence time", required=False),
         _c("rank_confidence", "float", "", "probability that the rank is right given the timing uncertainty", required=False),
+        _c("co_initiated_with", "str", "", "birth ranks of the primordia it is co-initiated with, separated by ';'", required=False),
+        _c("emergence_time_size_h", "float", "h", "emergence time from the primordium's size clock (ln radius fitted over the track)", required=False),
+        _c("n_frames", "int", "", "number of detections in the primordium's track", required=False),
+        _c("fit_residual_um", "float", "µm", "RMS residual of the track's r(t) about the fitted growth law", required=False),
+        _c("track_flags", "str", "", "quality marks of the track (see the tracks table)", required=False),
     ],
     "divergence": [
         _c("from_rank", "int", "", "birth rank of the earlier primordium"),

@@ -219,9 +219,38 @@ class _Field:
         dd = (r - self.R * cosd) * (self.g * r) / d
         return k.sum(axis=1), (-self.s / ell * k * dd).sum(axis=1)
 
-    def energy(self, t, ell):
-        """Inhibition at every rim sample (computed in place: d² = R² + r² − 2Rr·cos Δ)."""
+    def local(self, t, ell, phi):
+        """E, ∂E/∂φ, ∂²E/∂φ² and ∂E/∂t at one rim angle ``phi`` (radians), analytically."""
         a, b = self.first_active, self.n
+        r = self.R * np.exp(self.g * (t - self.tb[a:b]))
+        c, s_ = math.cos(phi), math.sin(phi)
+        cosd = c * self.cth[0, a:b] + s_ * self.cth[1, a:b]
+        sind = s_ * self.cth[0, a:b] - c * self.cth[1, a:b]
+        two_rr = 2.0 * self.R * r
+        u = np.maximum(self.R * self.R + r * r - two_rr * cosd, self.d2_floor)
+        u_p = two_rr * sind
+        u_pp = two_rr * cosd
+        u_t = (2.0 * r - 2.0 * self.R * cosd) * (self.g * r)
+        self.evals += 1
+        if self.power:
+            q = (ell * ell) / u
+            k = q ** (0.5 * self.s) if self.s != 3.0 else q * np.sqrt(q)
+            a1 = -0.5 * self.s / u
+            a2 = 0.5 * self.s * (0.5 * self.s + 1.0) / (u * u)
+        else:
+            d = np.sqrt(u)
+            k = np.exp(self.s * (1.0 - d / ell))
+            a1 = -self.s / (2.0 * ell * d)
+            a2 = a1 * a1 + self.s / (4.0 * ell * d * u)
+        ka1 = k * a1
+        return (float(k.sum()), float((ka1 * u_p).sum()),
+                float((k * a2 * u_p * u_p + ka1 * u_pp).sum()), float((ka1 * u_t).sum()))
+
+    def energy(self, t, ell, a=None, b=None):
+        """Inhibition at every rim sample from the active primordia (or from primordia a..b−1),
+        computed in place: d² = R² + r² − 2Rr·cos Δ."""
+        a = self.first_active if a is None else a
+        b = self.n if b is None else b
         r = self.R * np.exp(self.g * (t - self.tb[a:b]))
         self.evals += 1
         w = self.cs @ (self.cth[:, a:b] * (-2.0 * self.R * r))
@@ -251,13 +280,16 @@ def _grid_parabola(step, e, k):
     return (k + max(-0.5, min(0.5, off))) * step
 
 
-def _refine(fld: _Field, t, ell, phi, h):
-    """Polish a minimum angle by a parabola through E at phi − h, phi, phi + h (twice)."""
-    for hh in (h, 0.1 * h):
-        em, e0, ep = fld.at(t, ell, [phi - hh, phi, phi + hh])
-        den = em - 2.0 * e0 + ep
-        if den > 0:
-            phi = phi + hh * max(-1.0, min(1.0, 0.5 * (em - ep) / den))
+def _refine(fld: _Field, t, ell, phi, iters: int = 8):
+    """Newton steps in angle to the local minimum of the inhibition near ``phi`` at time t."""
+    h = fld.step
+    for _ in range(iters):
+        e, ep, epp, _ = fld.local(t, ell, phi)
+        dphi = -ep / epp if epp > 0 else -math.copysign(0.25 * h, ep)
+        dphi = max(-h, min(h, dphi))
+        phi += dphi
+        if abs(dphi) < 1e-11:
+            break
     return phi
 
 
@@ -268,64 +300,76 @@ def _local_minima(e, level):
     return [int(i) for i in idx if e[i] <= e[(i - 1) % m] and e[i] < e[(i + 1) % m]]
 
 
-def _crossing(fld: _Field, phi: float, lo: float, hi: float, ell: float, lthr: float, gamma: float) -> float:
-    """Time in [lo, hi] (hi may be infinite) at which the inhibition at rim angle ``phi`` falls to
-    the threshold: Newton steps on ln E kept inside a bisection bracket."""
-    t = lo
+def _joint_newton(fld: _Field, t, phi, lo, hi, ell, lthr, gamma):
+    """Time and angle at which a local minimum of the rim inhibition reaches the threshold:
+    Newton steps on ln E(φ, t) = ln threshold in t and on ∂E/∂φ = 0 in φ, with t kept inside
+    the bracket [lo, hi] (hi may be infinite)."""
+    h = fld.step
     for _ in range(100):
-        ek, dk = fld.at(t, ell, phi, deriv=True)
-        gval = math.log(ek[0]) - lthr
-        if abs(gval) < 1e-12:
-            return t
-        if gval > 0:
-            lo = t
-        else:
-            hi = t
-        if math.isfinite(hi) and hi - lo <= 1e-12 * (1.0 + abs(hi)):
+        e, ep, epp, et = fld.local(t, ell, phi)
+        gval = math.log(e) - lthr
+        dphi = -ep / epp if epp > 0 else -math.copysign(0.25 * h, ep)
+        dphi = max(-h, min(h, dphi))
+        if gval > 0 and abs(dphi) < 1e-9:
+            lo = max(lo, t)  # E above threshold at the minimum itself: not yet crossed
+        elif gval < 0:  # E below threshold anywhere: the minimum crossed already
+            hi = min(hi, t)
+        if abs(gval) < 1e-11 and abs(dphi) < 1e-9:
             break
-        slope = dk[0] / ek[0]
+        phi += dphi
+        slope = et / e
         t_next = t - gval / slope if slope < 0 else math.nan
-        if not (lo < t_next < hi):
+        if abs(gval) < 1e-7 and abs(dphi) < 1e-6 and lo <= t_next <= hi:
+            # quadratic convergence: the error after this step is of the order of its square
+            t = t_next
+            break
+        if not (lo <= t_next <= hi) or not math.isfinite(t_next):
             t_next = 0.5 * (lo + hi) if math.isfinite(hi) else lo + 1.0 / gamma
+        if math.isfinite(hi) and hi - lo <= 1e-13 * (1.0 + abs(hi)) and abs(dphi) < 1e-9:
+            t = t_next
+            break
         t = t_next
-    return hi if math.isfinite(hi) else t
+    return t, phi
 
 
 def _next_birth(fld: _Field, t_now: float, ell: float, thr: float, e0: np.ndarray, guess_dt: float,
                 gamma: float):
     """Earliest time after ``t_now`` at which the lowest inhibition on the rim falls to the
-    threshold. Returns (time, angle of that minimum, rim inhibition at about that time).
+    threshold. Returns (time, angle of that minimum, rim inhibition at that time).
 
     A second look at ``t_now + guess_dt`` brackets the crossing; every rim sample's crossing is
-    predicted by log-linear interpolation and the earliest is solved exactly. The minimum over the
-    rim is never above the inhibition at any one angle, so a sample's crossing bounds the answer
-    from above; a lower sample found there moves the bound earlier, until the lowest sample at the
-    bound is the one solved. The continuous minimum near it is then polished and its own crossing
-    (at or before the bound) solved."""
+    predicted by log-linear interpolation, and the earliest one's local minimum is followed by
+    Newton steps to its exact crossing. The whole rim is then checked at that time: if another
+    site is already below threshold it crossed earlier, and the search restarts there with this
+    time as an upper bound."""
     lthr = math.log(thr)
     lo, hi = t_now, math.inf
     t1 = t_now + guess_dt
     e1 = fld.energy(t1, ell)
     if e1.min() > thr:
-        lo = t1
+        # the grid says "not yet" at t1, but the minimum between samples may be a little lower,
+        # so t1 is a starting point, not a bound
         k = int(np.argmin(e1))
+        t_start = t1
     else:
         hi = t1
         l0, l1 = np.log(e0), np.log(e1)
         with np.errstate(divide="ignore", invalid="ignore"):
             frac = np.where(l1 <= lthr, (l0 - lthr) / (l0 - l1), np.inf)
         k = int(np.argmin(frac))
-    e = e1
+        t_start = t_now + min(max(float(frac[k]), 0.0), 1.0) * guess_dt
+    phi_start = _grid_parabola(fld.step, e1, k)
     for _ in range(50):
-        hi = _crossing(fld, fld.phi[k], lo, hi, ell, lthr, gamma)
-        e = fld.energy(hi, ell)
-        k2 = int(np.argmin(e))
-        if k2 == k or e[k2] >= e[k] * (1.0 - 1e-12):
-            break
-        k = k2
-    phi = _refine(fld, hi, ell, _grid_parabola(fld.step, e, k), 0.25 * fld.step)
-    t = _crossing(fld, phi, lo, hi, ell, lthr, gamma)
-    phi = _refine(fld, t, ell, phi, 0.05 * fld.step)
+        t, phi = _joint_newton(fld, t_start, phi_start, lo, hi, ell, lthr, gamma)
+        e = fld.energy(t, ell)
+        far = np.abs((fld.phi - phi + np.pi) % (2 * np.pi) - np.pi) > 1.5 * fld.step
+        below = np.nonzero(far & (e < thr * (1.0 - 1e-9)))[0]
+        if below.size == 0:
+            return t, phi, e
+        hi = t
+        k = int(below[np.argmin(e[below])])
+        t_start = t
+        phi_start = _grid_parabola(fld.step, e, k)
     return t, phi, e
 
 
@@ -364,70 +408,15 @@ def spiral_initial(n: int, divergence_deg: float, p: ModelParams, plastochron_ra
     return pd.DataFrame({"birth_time_h": t, "theta_deg": np.mod(th, 360.0)})
 
 
-def _row_crossing(fld: "_Field", k: int, lo: float, hi: float, ell: float, lthr: float, gamma: float) -> float:
-    """Time at which the inhibition at rim sample k falls to the threshold, searched in [lo, hi]
-    (hi may be infinite) by Newton steps on ln E kept inside a bisection bracket."""
-    t = lo
-    for _ in range(100):
-        ek, dk = fld.energy(t, ell, rows=k, deriv=True)
-        gval = math.log(ek[0]) - lthr
-        if gval > 0:
-            lo = t
-        else:
-            hi = t
-        if abs(gval) < 1e-12:
-            return t
-        if math.isfinite(hi) and hi - lo <= 1e-12 * (1.0 + abs(hi)):
-            break
-        slope = dk[0] / ek[0]
-        t_next = t - gval / slope if slope < 0 else math.nan
-        if not (lo < t_next < hi):
-            t_next = 0.5 * (lo + hi) if math.isfinite(hi) else lo + 1.0 / gamma
-        t = t_next
-    return hi if math.isfinite(hi) else t
-
-
-def _next_birth_time(fld: "_Field", t_now: float, ell: float, thr: float, e0: np.ndarray,
-                     guess_dt: float, gamma: float):
-    """Earliest time after ``t_now`` at which the minimum of the inhibition over the rim falls
-    to the threshold; returns the time and the rim inhibition then.
-
-    A second look at ``t_now + guess_dt`` brackets the crossing; every rim sample's crossing is
-    predicted by log-linear interpolation and the earliest is solved exactly (Newton on its
-    ln E). The minimum over the rim is never above the inhibition at any one sample, so a
-    sample's crossing bounds the answer from above; a lower sample found there moves the bound
-    earlier, until the lowest sample at the bound is the one solved."""
-    lthr = math.log(thr)
-    lo, hi = t_now, math.inf
-    t1 = t_now + guess_dt
-    e1 = fld.energy(t1, ell)
-    if e1.min() > thr:
-        lo = t1
-        k = int(np.argmin(e1))
-    else:
-        hi = t1
-        l0, l1 = np.log(e0), np.log(e1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            frac = np.where(l1 <= lthr, (l0 - lthr) / (l0 - l1), np.inf)
-        k = int(np.argmin(frac))
-    for _ in range(50):
-        hi = _row_crossing(fld, k, lo, hi, ell, lthr, gamma)
-        e = fld.energy(hi, ell)
-        k2 = int(np.argmin(e))
-        if k2 == k or e[k2] >= e[k] * (1.0 - 1e-12):
-            return hi, e
-        k = k2
-    return hi, e
-
-
 def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, initial: str = "one",
              given=None, seed: int = 0) -> Simulation:
-    """Run the inhibitory-field model until ``n_primordia`` primordia exist.
+    """Run the inhibitory-field model until at least ``n_primordia`` primordia exist.
 
     Parameters
     ----------
     n_primordia : int
-        Total number of primordia (including the initial ones).
+        Total number of primordia (including the initial ones); the last birth group (pair,
+        whorl) is always complete, so a few more may be born.
     params : ModelParams or dict, optional
         Model parameters (defaults: :class:`ModelParams`).
     initial : {"one", "two", "three", "given"}
@@ -453,7 +442,7 @@ def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, i
     n_primordia = int(n_primordia)
     if n_primordia < len(t0):
         raise SettingsError(f"n_primordia ({n_primordia}) is smaller than the initial condition ({len(t0)})")
-    fld = _Field(p, n_primordia + 8)
+    fld = _Field(p, n_primordia + int(p.rim_points))
     for t, th in zip(t0, th0):
         fld.add(t, math.radians(th))
     times, thetas = list(t0), list(th0)
@@ -466,6 +455,7 @@ def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, i
         log_ramp = (math.log(p.start_range_um), math.log(p.inhibition_range_um))
     born = len(t0)
     last_dt = 0.0
+    e_prev, ell_prev, n_prev = None, None, 0
     while born < n_primordia:
         k_new = born - len(t0)
         if log_ramp is not None:
@@ -475,7 +465,13 @@ def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, i
             ell = p.inhibition_range_um
         thr = p.threshold * (math.exp(rng.normal(0.0, p.threshold_noise)) if p.threshold_noise > 0 else 1.0)
         fld.prune(t_now, ell, thr)
-        e = fld.energy(t_now, ell)
+        if e_prev is not None and (ell == ell_prev or fld.power):
+            # the rim inhibition at t_now is the last one computed plus the newborn primordia
+            # (the power kernel scales as ℓ^s when the range changes); primordia just pruned
+            # keep their negligible share, which only makes an immediate birth less likely
+            e = e_prev * (ell / ell_prev) ** fld.s + fld.energy(t_now, ell, n_prev, fld.n)
+        else:
+            e = fld.energy(t_now, ell)
         k = int(np.argmin(e))
         if e[k] > thr:
             guess = last_dt if last_dt > 0 else 0.1 / p.growth_rate_per_h
@@ -484,7 +480,7 @@ def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, i
             level = float(e.min()) * (1.0 + p.co_initiation_tol)
         else:
             # already at or below threshold (after a change of range or threshold): born now
-            phi_first = _refine(fld, t_now, ell, _grid_parabola(fld.step, e, k), 0.25 * fld.step)
+            phi_first = _refine(fld, t_now, ell, _grid_parabola(fld.step, e, k))
             level = float(e[k]) * (1.0 + p.co_initiation_tol)
         # every other separate rim site at the threshold at the same time is born too
         chosen = [phi_first]
@@ -492,9 +488,9 @@ def simulate(n_primordia: int = 200, params: ModelParams | dict | None = None, i
         for c in sorted(_local_minima(e, level), key=lambda c: e[c]):
             phi_c = _grid_parabola(fld.step, e, c)
             if all(abs((phi_c - q + np.pi) % (2 * np.pi) - np.pi) > sep for q in chosen):
-                chosen.append(_refine(fld, t_now, ell, phi_c, 0.25 * fld.step))
-        chosen = chosen[: n_primordia - born]
+                chosen.append(_refine(fld, t_now, ell, phi_c))
         gid += 1
+        e_prev, ell_prev, n_prev = e, ell, fld.n
         for phi_c in chosen:
             th = phi_c + (math.radians(rng.normal(0.0, p.angle_noise_deg)) if p.angle_noise_deg > 0 else 0.0)
             fld.add(t_now, th)

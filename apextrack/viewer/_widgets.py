@@ -52,11 +52,13 @@ def _setting_editor(name: str, default, meta: dict, type_text: str):
         return w, w.value
     if isinstance(default, float):
         w = QDoubleSpinBox()
-        w.setDecimals(4)
+        w.setDecimals(6)
         w.setRange(float(low) if low is not None else -1e12, float(high) if high is not None else 1e12)
         w.setSingleStep(max(abs(default) / 10.0, 0.01) if default else 0.1)
         w.setValue(default)
-        return w, w.value
+        shown = w.value()  # the default rounded to the shown decimals: keep the exact default
+
+        return w, lambda: default if w.value() == shown else w.value()
     # optional values (None default): free text, empty means "not set"
     w = QLineEdit()
     w.setPlaceholderText("auto / from the file")

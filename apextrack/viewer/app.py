@@ -50,6 +50,7 @@ def find_correction(viewer) -> Correction | None:
 def _update_layer(layer, data, kwargs: dict, layer_type: str) -> None:
     """Give an existing overlay layer new data and styling (no remove/insert: that is slow)."""
     if layer_type == "points":
+        layer.selected_data = set()  # row indices change with the data: never keep a stale selection
         layer.data = data
         layer.features = kwargs["features"]
         for key in ("size", "symbol", "face_color"):
@@ -140,8 +141,10 @@ def open_path(viewer, path=None):
 
 def launch(path=None, block: bool = True):
     """Open napari with a results folder or stack (the ``apextrack view`` command)."""
-    if path is not None:
-        kind_of(path)  # a bad path fails before any window opens
+    if path is not None and kind_of(path) == "result":  # a bad path fails before any window opens
+        from ..results import load_results
+
+        load_results(path)  # a missing table or hand-edited columns too
     import napari
 
     viewer = napari.Viewer(title="apextrack")

@@ -306,19 +306,19 @@ def _renamed_column(folder):
 
 
 def _pixel_units(folder):
-    for name in ("primordia.csv", "tracks.csv", "divergence.csv"):
-        p = folder / name
-        lines = p.read_text().split("\n")
-        lines[0] = lines[0].replace("x_um", "x_px").replace("y_um", "y_px").replace("time_h", "time_min")
-        p.write_text("\n".join(lines))
-    return folder / "primordia.csv"
+    # positions in pixels and times in minutes, as another program (or a person) wrote them
+    p = folder / "primordia.csv"
+    lines = p.read_text().split("\n")
+    lines[0] = lines[0].replace("x_um", "x_px").replace("y_um", "y_px").replace("time_h", "time_min")
+    p.write_text("\n".join(lines))
+    return p
 
 
 def _text_in_number(folder):
-    p = folder / "tracks.csv"
+    p = folder / "primordia.csv"
     lines = p.read_text().split("\n")
     cells = lines[1].split(",")
-    cells[0] = "seven"  # frame typed as a word
+    cells[0] = "seven"  # birth rank typed as a word
     lines[1] = ",".join(cells)
     p.write_text("\n".join(lines))
     return p

@@ -1,0 +1,155 @@
+"""Linking: motion fit, growth-aware prediction, memory, jump splitting, quality columns.
+
+The point sets here follow the growth law of primordia r(t) = R·exp(γ(t − τ)) at a fixed
+azimuth (Richards 1951, Phil. Trans. R. Soc. B 235; Douady & Couder 1992, Phys. Rev. Lett. 68)
+inside an image that drifts and turns; the tests check that the linking recovers the
+identities that generated them and that the fitted motion recovers the generating parameters.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from apextrack.link import (QUALITY_COLUMNS, fit_motion, link_detections, link_tracks, split_jumps,
+                            step_residuals)
+
+GOLDEN = 360.0 * (2.0 - (1.0 + math.sqrt(5.0)) / 2.0)
+
+
+def spiral_points(n_frames=10, interval_h=3.0, plastochron_h=6.0, rim_um=22.0, gamma=math.log(1.12) / 6.0,
+                  rotation_deg_per_frame=0.0, drift_um_per_frame=(0.0, 0.0), centre=(60.0, 60.0),
+                  noise_um=0.0, n_before=5, r_max_um=60.0, seed=0, births=None):
+    """Detections of a golden-angle spiral (true identity in ``true_id``), image coordinates."""
+    rng = np.random.default_rng(seed)
+    if births is None:
+        births = [(k * plastochron_h, (k * GOLDEN) % 360.0) for k in range(-n_before, 50)]
+    rows = []
+    for f in range(n_frames):
+        t = f * interval_h
+        phi = math.radians(f * rotation_deg_per_frame)
+        cx = centre[0] + f * drift_um_per_frame[0]
+        cy = centre[1] + f * drift_um_per_frame[1]
+        for pid, (tau, theta) in enumerate(births):
+            if tau > t:
+                continue
+            r = rim_um * math.exp(gamma * (t - tau))
+            if r > r_max_um:
+                continue
+            th = math.radians(theta) + phi
+            x = cx + r * math.cos(th) + rng.normal(0, noise_um)
+            y = cy - r * math.sin(th) + rng.normal(0, noise_um)
+            rows.append((f, t, x, y, 4.0 * r / rim_um, 20.0, pid))
+    return pd.DataFrame(rows, columns=["frame", "time_h", "x_um", "y_um", "radius_um", "snr", "true_id"])
+
+
+def identity_errors(tracks: pd.DataFrame) -> int:
+    """Number of links joining two different true primordia plus true links cut."""
+    tr = tracks.sort_values(["track_id", "frame"])
+    wrong = int(((tr["track_id"].diff() == 0) & (tr["true_id"].diff() != 0)).sum())
+    tt = tracks.sort_values(["true_id", "frame"])
+    cut = int(((tt["true_id"].diff() == 0) & (tt["track_id"].diff() != 0)).sum())
+    return wrong + cut
+
+
+def test_fit_motion_recovers_growth_rotation_and_centre():
+    # generating values: γ = ln(1.12)/6 h (plastochron ratio 1.12, Richards 1951 r = r0·exp(kt)),
+    # 2° per 3-h frame of rotation, drift (0.4, −0.3) µm per frame, 0.15 µm position noise
+    gamma = math.log(1.12) / 6.0
+    det = spiral_points(rotation_deg_per_frame=2.0, drift_um_per_frame=(0.4, -0.3), noise_um=0.15)
+    det = det.rename(columns={"true_id": "track_id"})
+    m = fit_motion(det)
+    assert m is not None
+    assert m.gamma_per_h == pytest.approx(gamma, rel=0.03)
+    # rotation counter-clockwise on the display turns +x towards −y: ω < 0 in image coordinates
+    assert math.degrees(-m.omega_rad_per_h) * 3.0 == pytest.approx(2.0, abs=0.1)
+    true_c = np.array([60.0 + 0.4 * f + 1j * (60.0 - 0.3 * f) for f in range(10)])
+    assert np.max(np.abs(m.frame_centres - true_c)) < 0.5
+    assert m.n_new >= 3
+    assert m.rim_radius_um == pytest.approx(22.0 * math.exp(gamma * 1.5), rel=0.05)
+
+
+def test_fit_motion_needs_three_tracks():
+    det = spiral_points().rename(columns={"true_id": "track_id"})
+    assert fit_motion(det[det["track_id"] < 2]) is None
+
+
+def test_growth_aware_linking_survives_fast_rotation_where_nearest_neighbour_fails():
+    # 15° per frame: a primordium at r = 45 µm moves ≈ 11.8 µm sideways per frame, about the
+    # spacing of neighbours; predicting the rotation keeps the identities
+    det = spiral_points(rotation_deg_per_frame=15.0, drift_um_per_frame=(0.5, 0.3), noise_um=0.1,
+                        n_frames=8)
+    plain = link_detections(det, 12.0, 2)
+    tracks, info = link_tracks(det, 12.0, 2)
+    assert "growth-aware" in info["method"]
+    assert identity_errors(tracks) == 0
+    assert identity_errors(plain) > 0
+
+
+def test_new_primordium_next_to_an_older_one():
+    # a primordium is born 3 µm from where an older one was in the previous frame (same
+    # azimuth ±8°, born one plastochron later): nearest neighbour may take the newborn for the
+    # older one; predicting the older one's outward drift keeps them apart
+    gamma = math.log(1.5) / 6.0
+    births = [(-24.0, 10.0), (-18.0, 150.0), (-12.0, 290.0), (-6.0, 70.0), (0.5, 210.0), (5.0, 78.0),
+              (12.0, 330.0), (18.0, 120.0)]
+    det = spiral_points(births=births, gamma=gamma, n_frames=8, noise_um=0.05, r_max_um=80.0)
+    tracks, info = link_tracks(det, 10.0, 1)
+    assert identity_errors(tracks) == 0
+
+
+def test_memory_bridges_a_missed_frame():
+    det = spiral_points(noise_um=0.05)
+    det = det[~((det["frame"] == 4) & (det["true_id"] == 3))]
+    tracks, _ = link_tracks(det, 12.0, 2)
+    ids = tracks.loc[tracks["true_id"] == 3, "track_id"].unique()
+    assert len(ids) == 1
+    assert int(tracks.loc[tracks["true_id"] == 3, "track_gaps"].iloc[0]) == 1
+
+
+def test_jump_is_split_and_marked():
+    det = spiral_points(noise_um=0.05).rename(columns={"true_id": "track_id"})
+    tr = det.copy()
+    jump = (tr["track_id"] == 6) & (tr["frame"] >= 6)
+    tr.loc[jump, "x_um"] += 8.0
+    m = fit_motion(det)
+    res = step_residuals(tr, m)
+    assert np.nanmax(res) > 7.0
+    out, n_cut = split_jumps(tr, m, 4.0)
+    assert n_cut == 1
+    assert out["track_id"].nunique() == det["track_id"].nunique() + 1
+    assert out.loc[out["_split"], "frame"].nunique() > 1
+
+
+def test_quality_columns_mark_short_tracks_without_dropping_them():
+    det = spiral_points(noise_um=0.05)
+    spur = pd.DataFrame({"frame": [5], "time_h": [15.0], "x_um": [5.0], "y_um": [5.0], "radius_um": [3.0],
+                         "snr": [5.0], "true_id": [-1]})
+    det = pd.concat([det, spur], ignore_index=True)
+    tracks, info = link_tracks(det, 12.0, 2, min_track_frames=2)
+    assert len(tracks) == len(det)  # nothing dropped
+    for c in QUALITY_COLUMNS:
+        assert c in tracks
+    row = tracks[tracks["true_id"] == -1].iloc[0]
+    assert "short" in row["track_flags"]
+    assert row["track_n_frames"] == 1
+    assert row["track_mean_snr"] == pytest.approx(5.0)
+
+
+def test_fallback_to_nearest_neighbour_with_too_few_tracks():
+    det = spiral_points(n_before=0, n_frames=4)
+    det = det[det["true_id"] <= 1]
+    tracks, info = link_tracks(det, 12.0, 2)
+    assert info["method"] == "nearest neighbour"
+    assert identity_errors(tracks) == 0
+
+
+def test_same_input_same_ids():
+    det = spiral_points(rotation_deg_per_frame=3.0, noise_um=0.2)
+    a, _ = link_tracks(det, 12.0, 2)
+    b, _ = link_tracks(det.sample(frac=1.0, random_state=1), 12.0, 2)
+    pd.testing.assert_frame_equal(a[["frame", "x_um", "track_id"]].sort_values(["frame", "x_um"]).reset_index(drop=True),
+                                  b[["frame", "x_um", "track_id"]].sort_values(["frame", "x_um"]).reset_index(drop=True))

@@ -1,0 +1,56 @@
+"""Projections and the dome surface height map."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from apextrack.model import make_synthetic_stack
+from apextrack.model.render import Scene, surface_height as true_surface
+from apextrack.projection import max_projection, shell_projection, surface_height, surface_projection
+
+
+def test_shell_projection_keeps_deep_autofluorescence_out():
+    zz = np.arange(20.0)[:, None, None]
+    yy, xx = np.mgrid[:40, :40]
+    surface = 15.0 - ((xx - 20) ** 2 + (yy - 20) ** 2) / 150.0      # a dome, slices
+    v = 5 * np.exp(-0.5 * (zz - surface) ** 2) + 1.0
+    v[3, 18:23, 18:23] += 200.0                                      # deep, bright
+    v[int(round(surface[10, 30])) - 1, 10, 30] += 50.0               # just under the surface
+    view, hm = surface_projection(v, 1.0, 1.0, shell_depth_um=3.0, cell_um=2.0)
+    assert hm.up == 1
+    assert max_projection(v)[20, 20] > 100 and view[20, 20] < 10
+    assert view[10, 30] > 40
+    full = hm.full()
+    assert np.nanmedian(np.abs(full - surface)) < 0.3
+
+
+def test_height_map_follows_the_rendered_dome_surface():
+    s = make_synthetic_stack(n_frames=1, shape_zyx=(20, 80, 80), z_step_um=1.5, tilt_deg=10,
+                             tilt_direction_deg=120, membrane=True, seed=3)
+    hm = surface_height(s.data[0][:, 1].astype(np.float32), 1.5, 0.8)
+    x, y, z = hm.points_px()
+    scene = Scene(shape_zyx=(20, 80, 80), pixel_size_um=0.8, z_step_um=1.5, tilt_deg=10, tilt_direction_deg=120)
+    zt = true_surface(scene, x * 0.8, y * 0.8)
+    inside = np.isfinite(zt) & (zt > 1.5) & (zt < 19 * 1.5)
+    assert inside.mean() > 0.8
+    assert np.median(np.abs(z[inside] - zt[inside])) < 0.5
+
+
+def test_the_side_the_dome_faces_is_found():
+    zz = np.arange(16.0)[:, None, None]
+    yy, xx = np.mgrid[:32, :32]
+    surface = 12.0 - ((xx - 16) ** 2 + (yy - 16) ** 2) / 100.0
+    v = np.exp(-0.5 * (zz - surface) ** 2) * 10 + (zz < surface) * 2.0   # tissue under the surface
+    up = surface_height(v, 1.0, 1.0, cell_um=2.0)
+    down = surface_height(v[::-1], 1.0, 1.0, cell_um=2.0)
+    assert up.up == 1 and down.up == -1
+    assert np.nanmedian(np.abs(up.z_um + down.z_um - 15.0)) < 0.3    # mirrored heights
+
+
+def test_columns_without_surface_fall_back_to_the_maximum():
+    v = np.zeros((5, 8, 8), np.float32)
+    hm = surface_height(v + 1.0, 1.0, 1.0, cell_um=2.0, up="+z")
+    assert np.isnan(hm.z_um).all()
+    v[2, 3, 3] = 7.0
+    assert shell_projection(v, hm, 1.0, 2.0)[3, 3] == pytest.approx(7.0)
