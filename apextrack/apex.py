@@ -53,7 +53,8 @@ def azimuth_deg(x, y, xc, yc) -> np.ndarray:
     90.0
     """
     theta = np.degrees(np.arctan2(-(np.asarray(y, float) - yc), np.asarray(x, float) - xc))
-    return np.mod(theta, 360.0)
+    theta = np.mod(theta, 360.0)
+    return np.where(theta >= 360.0, 0.0, theta)[()]  # np.mod gives 360.0 for tiny negative angles
 
 
 def centre_from_tracks(tracks: "pd.DataFrame", min_frames: int = 3, drift: bool = True,

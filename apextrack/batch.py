@@ -236,7 +236,7 @@ def make_client(scheduler: str | None = None, n_workers: int | None = None, *, d
 
     if scheduler:
         try:
-            client = Client(scheduler, timeout="20s")
+            client = Client(scheduler, timeout="10s")
         except (OSError, TimeoutError) as exc:
             raise InputError(f"cannot connect to the dask scheduler ({exc})", scheduler,
                              "check the address (e.g. tcp://host:8786) or leave --scheduler out") from None

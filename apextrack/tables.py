@@ -295,6 +295,12 @@ def read_table(path: str | Path, table: str | None = None) -> pd.DataFrame:
         raise ResultsError(
             f"{table} table lacks column(s) {', '.join(missing)} (found: {', '.join(map(str, df.columns))})",
             path, "columns and units must be as apextrack writes them")
+    # text columns exactly as written ("1", "NA" stay text; an empty cell is missing)
+    text_cols = [c.name for c in SCHEMA[table] if c.kind == "str" and c.name in df.columns]
+    if text_cols:
+        raw = pd.read_csv(path, dtype=str, keep_default_na=False, usecols=text_cols)
+        for name in text_cols:
+            df[name] = raw[name].astype(object).where(raw[name] != "", None)
     for col in SCHEMA[table]:
         if col.name not in df.columns:
             continue

@@ -1,0 +1,153 @@
+"""Batches on dask: per-stack results identical to one-by-one analyses, failures reported while
+the rest complete, experiment table and report, the command line."""
+
+from __future__ import annotations
+
+import json
+import os
+
+import pandas as pd
+import pytest
+
+from apextrack.batch import (EXPERIMENT_COLUMNS, find_stacks, read_experiment, run_batch, stack_names)
+from apextrack.errors import InputError
+
+TABLES = ["detections", "tracks", "primordia", "divergence", "centres", "parastichies"]
+SETTINGS = {"bootstrap_n": 100, "seed": 5}
+
+
+@pytest.fixture(scope="module")
+def client():
+    """One local cluster of 2 worker processes for the whole module (starting one is slow)."""
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0")
+    c = Client(cluster)
+    yield c
+    c.close()
+    cluster.close()
+
+
+@pytest.fixture(scope="module")
+def stacks(tmp_path_factory):
+    """Three small synthetic stacks (different plants) and one truncated stack."""
+    from apextrack.model import make_synthetic_stack, write_synthetic
+
+    d = tmp_path_factory.mktemp("plants")
+    for i, div in enumerate((137.5, 137.5, 99.5)):
+        synth = make_synthetic_stack(n_frames=5, shape_zyx=(5, 64, 64), pixel_size_um=1.0, apex_radius_um=14,
+                                     divergence_deg=div, seed=10 + i)
+        write_synthetic(synth, d / f"bed_{i + 1}.tif")
+    good = (d / "bed_1.tif").read_bytes()
+    (d / "bed_0_damaged.tif").write_bytes(good[: len(good) // 2])   # cut in the middle of the data
+    return d
+
+
+@pytest.fixture(scope="module")
+def batch_run(client, stacks, tmp_path_factory):
+    out = tmp_path_factory.mktemp("batch") / "experiment"
+    res = run_batch(stacks, out, SETTINGS, client=client, progress=False)
+    return res
+
+
+def test_find_stacks_and_names(tmp_path):
+    import numpy as np
+    import tifffile
+
+    (tmp_path / "plant10.tif").write_bytes(b"")
+    (tmp_path / "plant2.tif").write_bytes(b"")
+    (tmp_path / "plant2_truth.csv").write_text("x\n")
+    (tmp_path / ".hidden.tif").write_bytes(b"")
+    (tmp_path / "timelapse").mkdir()
+    tifffile.imwrite(tmp_path / "timelapse" / "t001.tif", np.zeros((4, 4), np.uint8))
+    (tmp_path / "notes").mkdir()
+    (tmp_path / "notes" / "readme.txt").write_text("-")
+    (tmp_path / "apex.zarr").mkdir()
+    found = find_stacks(tmp_path)
+    assert [p.name for p in found] == ["apex.zarr", "plant2.tif", "plant10.tif", "timelapse"]
+    assert [p.name for p in find_stacks(str(tmp_path / "plant*.tif"))] == ["plant2.tif", "plant10.tif"]
+    assert stack_names([tmp_path / "a.ome.tif", tmp_path / "b.zarr", tmp_path / "x" / "a.tif"]) == ["a", "b", "a_2"]
+    with pytest.raises(InputError, match="no stacks found"):
+        find_stacks(str(tmp_path / "*.nd2"))
+    with pytest.raises(InputError, match="not found"):
+        find_stacks(tmp_path / "missing")
+
+
+def test_batch_gives_the_same_tables_as_one_by_one(batch_run, stacks, tmp_path):
+    from apextrack.pipeline import analyse
+
+    res = batch_run
+    ok = res.experiment[res.experiment["status"] == "ok"]
+    assert ok["stack"].tolist() == ["bed_1", "bed_2", "bed_3"]
+    for name in ok["stack"]:
+        alone = tmp_path / name
+        single = analyse(stacks / f"{name}.tif", out=alone, progress=False, **SETTINGS)
+        batch_dir = res.out / name
+        for table in TABLES:
+            a, b = alone / f"{table}.csv", batch_dir / f"{table}.csv"
+            assert a.exists() == b.exists(), (name, table)
+            if a.exists():
+                assert a.read_bytes() == b.read_bytes(), (name, table)
+        s_alone = json.loads((alone / "summary.json").read_text(encoding="utf-8"))
+        s_batch = json.loads((batch_dir / "summary.json").read_text(encoding="utf-8"))
+        assert s_alone == s_batch, name
+        assert (batch_dir / "report.html").exists() and (batch_dir / "topview.tif").exists()
+        # the experiment row carries the stack's summary figures
+        row = ok[ok["stack"] == name].iloc[0]
+        assert row["n_primordia"] == single.summary["n_primordia"]
+        for key in ("divergence_mean_deg", "plastochron_h", "plastochron_ratio"):
+            v = single.summary.get(key)
+            assert (pd.isna(row[key]) if v is None else row[key] == pytest.approx(v, rel=1e-12)), key
+
+
+def test_corrupt_stack_is_reported_and_the_others_complete(batch_run):
+    df = batch_run.experiment
+    assert df["stack"].tolist() == ["bed_0_damaged", "bed_1", "bed_2", "bed_3"]   # input order
+    bad = df[df["stack"] == "bed_0_damaged"].iloc[0]
+    assert bad["status"] == "failed"
+    assert "bed_0_damaged.tif" in bad["error"] and "truncated" in bad["error"] and "\n" not in bad["error"]
+    assert batch_run.failed == ["bed_0_damaged"]
+    assert not (batch_run.out / "bed_0_damaged").exists()
+    assert (df.loc[df["stack"] != "bed_0_damaged", "status"] == "ok").all()
+
+
+def test_experiment_table_and_report(batch_run):
+    back = read_experiment(batch_run.out)
+    assert list(back.columns) == EXPERIMENT_COLUMNS
+    pd.testing.assert_frame_equal(back, batch_run.experiment, check_exact=False, rtol=1e-12)
+    text = (batch_run.out / "experiment_report.html").read_text(encoding="utf-8")
+    for name in ("bed_1", "bed_2", "bed_3"):
+        assert f'href="{name}/report.html"' in text
+    assert "truncated" in text
+    assert text.count("data:image/png;base64,") == 3
+
+
+def test_command_line_batch_on_an_existing_scheduler(client, stacks, tmp_path, capsys):
+    from apextrack.cli import main
+
+    out = tmp_path / "cli"
+    code = main(["batch", str(stacks / "bed_[03]*.tif"), "--out", str(out), "--scheduler", client.scheduler.address])
+    captured = capsys.readouterr()
+    assert code == 3                                     # one stack failed
+    assert "dashboard" in captured.err
+    assert "bed_0_damaged: failed:" in captured.err      # one line for the failed stack
+    assert "1 of 2 stack(s) analysed" in captured.out
+    df = pd.read_csv(out / "experiment.csv")
+    assert df["stack"].tolist() == ["bed_0_damaged", "bed_3"] and df["status"].tolist() == ["failed", "ok"]
+    # without --overwrite an existing results folder is an error for that stack only
+    code = main(["batch", str(stacks / "bed_3.tif"), "--out", str(out), "--scheduler", client.scheduler.address,
+                 "--quiet"])
+    assert code == 3
+    assert "--overwrite" in pd.read_csv(out / "experiment.csv")["error"].iloc[0]
+
+
+def test_bad_scheduler_address_is_a_clear_error(stacks, tmp_path, capsys):
+    from apextrack.cli import main
+
+    code = main(["batch", str(stacks), "--out", str(tmp_path / "x"), "--scheduler", "tcp://127.0.0.1:1"])
+    assert code == 2
+    assert "cannot connect to the dask scheduler" in capsys.readouterr().err
+
+
+if __name__ == "__main__":  # worker processes are spawned: guard the entry point
+    raise SystemExit(pytest.main([os.path.abspath(__file__), "-q"]))
