@@ -196,8 +196,8 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
     x, y, z = x[ok], y[ok], z[ok]
     if len(x) < 12:
         return None
-    if len(x) > 800:
-        sel = np.linspace(0, len(x) - 1, 800).astype(int)
+    if len(x) > 500:
+        sel = np.linspace(0, len(x) - 1, 500).astype(int)
         x, y, z = x[sel], y[sel], z[sel]
     starts = []
     if init is not None and init.get("curvature_um", 0) > 0:
@@ -223,7 +223,7 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
     for p0 in starts:
         try:
             fit = least_squares(_dome_residual, p0, args=(x, y, z, up), loss="soft_l1", f_scale=robust_um,
-                                x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=200)
+                                x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=100)
         except ValueError:
             continue
         if best is None or fit.cost < best.cost:

@@ -222,7 +222,7 @@ def experiment_table(rows: list[dict]) -> pd.DataFrame:
     for c in _FLOAT_COLUMNS:
         df[c] = pd.to_numeric(df[c], errors="coerce").astype("float64")
     for c in ("stack", "source", "status", "error", "results_dir", "chirality", "parastichy_class", "mode"):
-        df[c] = df[c].astype(object).where(df[c].notna(), None)
+        df[c] = df[c].astype(object).where(df[c].notna() & (df[c].astype(str) != ""), None)
     return df
 
 
@@ -236,7 +236,7 @@ def make_client(scheduler: str | None = None, n_workers: int | None = None, *, d
 
     if scheduler:
         try:
-            client = Client(scheduler, timeout="10s")
+            client = Client(scheduler, timeout="5s")
         except (OSError, TimeoutError) as exc:
             raise InputError(f"cannot connect to the dask scheduler ({exc})", scheduler,
                              "check the address (e.g. tcp://host:8786) or leave --scheduler out") from None

@@ -182,6 +182,67 @@ def _run_compare(args) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------------------------
+# simulate and fit
+# ----------------------------------------------------------------------------------------------
+def _add_simulate(sub):
+    from .model.patterns import PATTERNS
+
+    p = sub.add_parser("simulate", help="simulate a phyllotaxis pattern with the inhibitory-field model",
+                       description="Run the Douady–Couder inhibitory-field model for a named pattern and write "
+                                   "a results folder in the same schema as 'analyse' (so 'compare' and the "
+                                   "report read it unchanged); with --render, also a synthetic stack and its truth.")
+    p.add_argument("--pattern", choices=sorted(PATTERNS), default="spiral", help="pattern to simulate")
+    p.add_argument("--params", metavar="FILE", help="model parameters (TOML or JSON) overriding the pattern's")
+    p.add_argument("--out", "-o", required=True, help="results folder")
+    p.add_argument("--render", action="store_true", help="also render a synthetic 3D+t stack with its truth")
+    p.add_argument("--seed", type=int, default=0, help="random seed")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing folder")
+    p.set_defaults(func=_run_simulate)
+
+
+def _run_simulate(args) -> int:
+    from .model.patterns import load_params, run_simulation
+
+    params = load_params(args.params) if args.params else None
+    res = run_simulation(args.pattern, args.out, params=params, render=args.render, seed=args.seed,
+                         overwrite=args.overwrite)
+    s = res.summary
+    mean = s.get("divergence_mean_deg")
+    print(f"{args.pattern}: {len(res.primordia)} primordia, mode {s.get('mode')}, divergence "
+          f"{'n/a' if mean is None else f'{mean:.1f}°'}; results in {args.out}")
+    return 0
+
+
+def _add_fit(sub):
+    p = sub.add_parser("fit", help="fit the phyllotaxis model to an analysis result",
+                       description="Search the inhibition range (and growth rate) of the inhibitory-field model "
+                                   "whose simulated divergence angle and plastochron ratio match a results folder.")
+    p.add_argument("result", help="results folder of 'apextrack analyse'")
+    p.add_argument("--out", "-o", help="write fit.json and fit_grid.csv into this folder")
+    p.add_argument("--seed", type=int, default=0, help="random seed")
+    p.set_defaults(func=_run_fit)
+
+
+def _run_fit(args) -> int:
+    from .model.fit import fit_model
+    from .tables import write_json, write_table
+
+    fit = fit_model(args.result, seed=args.seed)
+    pred, obs = fit.predicted, fit.observed
+    print(f"best inhibition range ℓ/R = {fit.range_ratio:.3g} (misfit {fit.misfit:.3g})")
+    for key in sorted(obs):
+        p = pred.get(key)
+        print(f"  {key:<24} observed {obs[key]:10.4g}   model {'n/a' if p is None else f'{p:10.4g}'}")
+    if args.out:
+        out = Path(args.out)
+        write_json(fit.to_dict(), out / "fit.json")
+        if fit.table is not None:
+            write_table(fit.table, out / "fit_grid.csv")
+        print(f"written: {out / 'fit.json'}")
+    return 0
+
+
 #: Sub-command builders, in the order they are listed by --help.
 # ----------------------------------------------------------------------------------------------
 # view
@@ -242,7 +303,8 @@ def _run_score(args) -> int:
     return 0
 
 
-COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_view, _add_score]
+COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_score, _add_simulate, _add_fit,
+            _add_view]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -90,7 +90,9 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
     my, mx = (ny // b) * b, (nx // b) * b
     v = volume[:, :my, :mx]
     if b > 1:
-        v = v.reshape(nz, my // b, b, mx // b, b).mean(axis=(2, 4))
+        # one axis at a time (much faster than a reduction over two strided axes)
+        v = v.reshape(nz, my, mx // b, b).sum(axis=3, dtype=np.float32)
+        v = v.reshape(nz, my // b, b, mx // b).sum(axis=2, dtype=np.float32) / np.float32(b * b)
     return v
 
 
@@ -134,8 +136,9 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
         Side the dome faces; ``auto`` decides from the data (:func:`dome_side`).
     rel_level : float
         A peak counts when it rises above ``rel_level`` of the column's range over the
-        volume's background (the range capped at the median column's, so that bright deep
-        signal does not hide a fainter surface above it).
+        volume's background (the range capped at the 75th percentile of the columns', so that
+        bright deep signal does not hide a fainter surface above it). Columns whose range is
+        under 30 % of that typical range hold no surface (NaN).
 
     Returns
     -------
@@ -166,12 +169,13 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     else:
         raise ValueError(f"up must be 'auto', '+z' or '-z', not {up!r}")
     p = v if side == 1 else v[::-1]
-    bg = float(np.percentile(p, 5))
+    sample = p.ravel()[:: max(1, p.size // 200000)]
+    bg = float(np.percentile(sample, 5))
     top = p.max(axis=0)
-    noise = 1.4826 * float(np.median(np.abs(p - np.median(p)))) + 1e-9
+    noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) + 1e-9
     # the level a peak must reach: relative to the column's own top, but never above the
     # typical column top, so that a bright deep spot does not hide the surface above it
-    typical = float(np.median(top[top - bg > 3 * noise])) if np.any(top - bg > 3 * noise) else float(top.max())
+    typical = float(np.percentile(top, 75))
     thr = bg + rel_level * (np.minimum(top, typical) - bg)
     # peaks: not lower than either neighbour along z (edges count as one-sided peaks)
     up_n = np.concatenate([p[1:], np.full((1,) + p.shape[1:], -np.inf, np.float32)])
@@ -179,7 +183,8 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     peak = (p >= up_n) & (p >= dn_n) & (p >= thr[None])
     # outermost = highest index on the dome's side
     idx = (nz - 1) - np.argmax(peak[::-1], axis=0)
-    found = peak.any(axis=0) & ((top - bg) > 3 * noise)
+    # columns whose top is far below the typical surface hold no surface (it left the stack)
+    found = peak.any(axis=0) & ((top - bg) > 3 * noise) & ((top - bg) > 0.3 * (typical - bg))
     k = np.clip(idx, 1, max(nz - 2, 1)) if nz >= 3 else idx
     iy, ix = np.indices(idx.shape)
     z = idx.astype(float)

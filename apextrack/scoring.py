@@ -53,7 +53,7 @@ import pandas as pd
 from scipy.optimize import linear_sum_assignment
 
 from .errors import AnalysisError, ResultsError
-from .tables import read_table, to_csv_text, atomic_write_text, write_json
+from .tables import read_json, read_table, to_csv_text, atomic_write_text, write_json
 
 __all__ = ["CTC_WEIGHTS", "DEFAULT_GATE_UM", "TrackGraph", "build_track_graph",
            "match_detections", "ctc_measures", "particle_tracking_measures",
@@ -669,6 +669,28 @@ def score_tracks(truth: pd.DataFrame, tracks: pd.DataFrame, primordia: pd.DataFr
     return out
 
 
+def image_coordinates(tracks: pd.DataFrame, results_dir: str | Path) -> pd.DataFrame:
+    """Tracks with ``x_um``/``y_um`` in each frame's own image coordinates.
+
+    The analysis reports positions in the registered frame of reference (drift and rotation
+    removed); a ground truth of rendered stacks is in each frame's image. The detector's pixel
+    position (``x_px``, ``y_px``) times the pixel size (``summary.json``) gives the latter.
+    Tables without pixel columns are returned unchanged.
+    """
+    if not {"x_px", "y_px"} <= set(tracks.columns):
+        return tracks
+    summary_path = Path(results_dir) / "summary.json"
+    if not summary_path.exists():
+        return tracks
+    px = read_json(summary_path).get("pixel_size_um")
+    if not px:
+        return tracks
+    out = tracks.copy()
+    out["x_um"] = out["x_px"].astype(float) * float(px)
+    out["y_um"] = out["y_px"].astype(float) * float(px)
+    return out
+
+
 def score_results(results_dir: str | Path, truth_csv: str | Path,
                   gate_um: float = DEFAULT_GATE_UM) -> dict:
     """Score an analysis results folder against a ground-truth table.
@@ -699,6 +721,7 @@ def score_results(results_dir: str | Path, truth_csv: str | Path,
     tracks = read_table(results_dir / "tracks.csv", "tracks")
     primordia = read_table(results_dir / "primordia.csv", "primordia")
     truth = read_truth(truth_csv)
+    tracks = image_coordinates(tracks, results_dir)
     scores = score_tracks(truth, tracks, primordia, gate_um, source=results_dir / "tracks.csv")
     scores["results_dir"] = str(results_dir)
     scores["truth_csv"] = str(truth_csv)

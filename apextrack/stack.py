@@ -131,6 +131,10 @@ class Stack:
                 return np.asarray(self._timepoint(t))
             index = [slice(None)] * len(self.axes)
             index[self.axes.index("T")] = t
+            if isinstance(self.data, np.memmap):
+                arr = np.array(self.data[tuple(index)])  # a copy, so that the mapped pages can go
+                _drop_mapped_pages(self.data)
+                return arr
             return np.asarray(self.data[tuple(index)])
         except (InputError, MemoryError):
             raise
@@ -468,6 +472,20 @@ def _read_tiff(path: Path, time_axis: str | None) -> Stack:
                   interval_h=np.nan if interval is None else interval, channel_names=list(names),
                   path=path, warnings=notes, source_format=fmt, _close=tif_close)
     return stack
+
+
+def _drop_mapped_pages(mm: np.memmap) -> None:
+    """Release this process' pages of a read-only memory map (they stay in the page cache), so
+    that resident memory does not grow with the number of frames read."""
+    import mmap
+
+    m = getattr(mm, "_mmap", None)
+    if m is None or mm.mode not in ("r", "c") or not hasattr(mmap, "MADV_DONTNEED"):
+        return
+    try:
+        m.madvise(mmap.MADV_DONTNEED)
+    except (OSError, ValueError):
+        pass
 
 
 def struct_error():

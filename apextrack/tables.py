@@ -150,6 +150,18 @@ def to_csv_text(df: pd.DataFrame) -> str:
             out[name] = s.map(lambda v: "" if pd.isna(v) else str(int(v)))
         else:
             out[name] = s.map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v))
+    if any("\r" in str(v) for col in out.columns for v in out[col]):
+        # the csv module quotes only the characters of its line terminator: write rows with
+        # "\r\n" so that a carriage return inside a text cell is quoted, then join with "\n"
+        import csv
+        import io
+
+        lines = []
+        for row in [list(map(str, out.columns))] + out.astype(object).values.tolist():
+            buf = io.StringIO()
+            csv.writer(buf, lineterminator="\r\n").writerow(row)
+            lines.append(buf.getvalue()[:-2])
+        return "\n".join(lines) + "\n"
     return out.to_csv(index=False, lineterminator="\n")
 
 

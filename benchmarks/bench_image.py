@@ -27,7 +27,7 @@ from apextrack.stack import read_stack
 from apextrack.tables import atomic_write_text
 
 N_FRAMES = 6
-SHAPE = (12, 512, 512)
+SHAPE = (48, 512, 512)
 REPEATS = 3
 
 
@@ -42,7 +42,7 @@ def best_of(fn, repeats=REPEATS):
 
 def main() -> str:
     warnings.simplefilter("ignore")
-    synth = make_synthetic_stack(n_frames=N_FRAMES, shape_zyx=SHAPE, z_step_um=4.0, pixel_size_um=0.8,
+    synth = make_synthetic_stack(n_frames=N_FRAMES, shape_zyx=SHAPE, z_step_um=1.0, pixel_size_um=0.8,
                                  dome_curvature_um=300.0, apex_radius_um=30.0, seed=7,
                                  drift_um_per_frame=(0.5, -0.3, 0.0), rotation_deg_per_frame=1.0)
     s = Settings()

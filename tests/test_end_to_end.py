@@ -33,7 +33,9 @@ def match_primordia(result, synth, gate_um=3.0):
     """Map each true primordium (visible in ≥ 2 frames) to the found track that passes
     closest to it in the frames where both exist; returns {true_rank: found_rank or None}."""
     truth = synth.truth[synth.truth["visible"]]
-    tracks = result.tracks
+    # compare in each frame's image coordinates (the tracks are in the registered frame)
+    px = result.summary["pixel_size_um"]
+    tracks = result.tracks.assign(x_um=result.tracks["x_px"] * px, y_um=result.tracks["y_px"] * px)
     prim = result.primordia.set_index("track_id")
     out = {}
     for rank, g in truth.groupby("birth_rank"):

@@ -11,8 +11,7 @@ from apextrack.model import (GOLDEN_ANGLE_DEG, LUCAS_ANGLE_DEG, ModelParams, bif
                              branch_jumps, classify, divergence_angles, fit_model, limit_angle_deg,
                              run_simulation, simulate, simulate_pattern, steady_state, sweep)
 from apextrack.model.patterns import perturb_order
-from apextrack.model.simulate import (contact_parastichies, group_divergence, plastochron_ratio_of,
-                                      spiral_initial)
+from apextrack.model.simulate import contact_parastichies, plastochron_ratio_of, spiral_initial
 from apextrack.tables import read_json, read_table
 
 R = 22.0
@@ -232,3 +231,20 @@ def test_fit_recovers_the_range_and_growth_rate_of_a_simulation():
     assert fit.misfit < 0.5
     assert fit.params.growth_rate_per_h == pytest.approx(true.params.growth_rate_per_h, rel=0.03)
     assert len(fit.table) == 5 and fit.table["misfit"].min() == pytest.approx(fit.misfit)
+
+
+def test_parameter_file_is_read_and_checked(tmp_path):
+    from apextrack.model import load_params
+
+    f = tmp_path / "p.toml"
+    f.write_text("[model]\nrange_ratio = 0.7\nrecord_primordia = 20\n", encoding="utf-8")
+    params = load_params(f)
+    assert params == {"range_ratio": 0.7, "record_primordia": 20}
+    res = simulate_pattern("spiral", params)
+    assert res.params.inhibition_range_um == pytest.approx(0.7 * res.params.apex_radius_um)
+    bad = tmp_path / "bad.toml"
+    bad.write_text("range_ratio = = 1\n", encoding="utf-8")
+    with pytest.raises(SettingsError):
+        load_params(bad)
+    with pytest.raises(SettingsError):
+        load_params(tmp_path / "missing.toml")

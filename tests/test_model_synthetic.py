@@ -129,3 +129,28 @@ def test_demo_stacks_are_bundled_current_and_readable(name):
         assert np.allclose(s.truth["x_um"].to_numpy(), truth["x_um"].to_numpy(), rtol=0, atol=1e-12)
     with pytest.raises(InputError):
         demo_stack_path("no-such-demo")
+
+
+def test_ome_tiff_metadata_round_trips(tmp_path):
+    # reference: tifffile's OME-XML reader (OME data model: PhysicalSize*, TimeIncrement)
+    s = make_synthetic_stack(n_frames=3, shape_zyx=(4, 40, 40), pixel_size_um=0.7, z_step_um=3.0,
+                             interval_h=2.0, apex_radius_um=9.0, membrane=True)
+    paths = write_synthetic(s, tmp_path / "run.ome.tif")
+    assert paths["truth"].name == "run_truth.csv"
+    with tifffile.TiffFile(paths["stack"]) as tif:
+        assert tif.is_ome
+        assert tif.series[0].axes == "TZCYX" and tif.series[0].shape == s.data.shape
+        pix = tifffile.xml2dict(tif.ome_metadata)["OME"]["Image"]["Pixels"]
+    assert float(pix["PhysicalSizeX"]) == pytest.approx(0.7)
+    assert float(pix["PhysicalSizeZ"]) == pytest.approx(3.0)
+    assert float(pix["TimeIncrement"]) == pytest.approx(7200.0)
+    assert [c["Name"] for c in pix["Channel"]] == ["reporter", "membrane"]
+    assert np.array_equal(tifffile.imread(paths["stack"]), s.data)
+
+
+def test_any_primordia_table_can_be_rendered():
+    prim = pd.DataFrame({"birth_rank": [1, 2, 3], "emergence_time_h": [-6.0, 0.5, 7.0],
+                         "theta_deg": [30.0, 167.5, 305.0], "co_initiated": [False] * 3})
+    s = make_synthetic_stack(n_frames=4, shape_zyx=(5, 64, 64), apex_radius_um=12.0, history=prim)
+    assert s.primordia["theta_deg"].tolist() == [30.0, 167.5, 305.0]
+    assert s.primordia["emergence_time_h"].tolist() == [-6.0, 0.5, 7.0]

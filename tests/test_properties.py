@@ -56,8 +56,9 @@ def _analyse_array(synth, data, **settings_):
 
     stack = from_array(np.ascontiguousarray(data), synth.axes, pixel_size_um=synth.pixel_size_um,
                        interval_h=synth.interval_h, z_step_um=synth.z_step_um)
-    return analyse(stack, out=None, progress=False, write_report=False,
-                   settings=dict(bootstrap_n=100, **settings_))
+    opts = dict(bootstrap_n=100, register=False)
+    opts.update(settings_)
+    return analyse(stack, out=None, progress=False, write_report=False, settings=opts)
 
 
 def _centre_of_rotation_um(synth):
@@ -99,6 +100,15 @@ def test_image_mirror_flips_chirality_keeps_angles(rendered, original):
     res = _analyse_array(rendered, np.flip(rendered.data, axis=-1), **extra)
     flipped = {"ccw": "cw", "cw": "ccw"}[res0.summary["chirality"]]
     _check_transformed(res0, res, lambda th: 180.0 - th, flipped)
+
+
+@pytest.mark.xfail(strict=True, reason="drift/rotation registration is not yet rotation-equivariant: on this stack "
+                                       "(true drift 0.3 µm/frame) it finds a cumulative shift of ~100 µm, "
+                                       "different for the rotated copy; remove this mark when it is fixed")
+def test_image_rotation_with_registration(rendered):
+    res0 = _analyse_array(rendered, rendered.data, register=True)
+    res = _analyse_array(rendered, np.rot90(rendered.data, 1, axes=(-2, -1)), register=True)
+    _check_transformed(res0, res, lambda th: th + 90.0, res0.summary["chirality"])
 
 
 # ----------------------------------------------------------------------------------------------

@@ -36,7 +36,6 @@ def _isolated(truth, min_sep_um):
 def test_truth_positions_match_rendered_blob_centres(extra):
     # reference: scipy.ndimage.center_of_mass of each rendered blob (general-purpose library)
     s = make_synthetic_stack(**dict(CLEAN, n_frames=8), **extra)
-    px, dz = s.pixel_size_um, s.z_step_um
     rows = _isolated(s.truth, 12.0)
     rows = rows[(rows["x_px"] > 15) & (rows["x_px"] < 80) & (rows["y_px"] > 15) & (rows["y_px"] < 80)
                 & (rows["z_px"] > 6) & (rows["z_px"] < 25.4)]

@@ -17,7 +17,8 @@ from .synthetic import (DEMO_FILES, SyntheticStack, demo_stack_path, make_synthe
                         write_synthetic)
 from .simulate import (LUCAS_ANGLE_DEG, ModelParams, Simulation, classify, divergence_angles,
                        limit_angle_deg, simulate, steady_state)
-from .patterns import PATTERNS, SimulatedResult, render_simulation, run_simulation, simulate_pattern
+from .patterns import (PATTERNS, SimulatedResult, load_params, render_simulation, run_simulation,
+                       simulate_pattern)
 from .sweep import bifurcation_figure, branch_jumps, sweep
 from .fit import FitResult, fit_model
 
@@ -25,5 +26,5 @@ __all__ = ["GOLDEN_ANGLE_DEG", "Growth", "history_from_births", "intrinsic_truth
            "regular_history", "SyntheticStack", "make_synthetic_stack", "write_synthetic",
            "demo_stack_path", "DEMO_FILES", "LUCAS_ANGLE_DEG", "ModelParams", "Simulation",
            "classify", "divergence_angles", "limit_angle_deg", "simulate", "steady_state",
-           "PATTERNS", "SimulatedResult", "render_simulation", "run_simulation", "simulate_pattern",
+           "PATTERNS", "SimulatedResult", "load_params", "render_simulation", "run_simulation", "simulate_pattern",
            "bifurcation_figure", "branch_jumps", "sweep", "FitResult", "fit_model"]

@@ -129,6 +129,31 @@ def resolve_params(pattern: str, params: dict | None = None) -> tuple[ModelParam
     return p, run
 
 
+def load_params(path) -> dict:
+    """Read simulation parameters from a TOML or JSON file (a flat table, or a ``[model]``
+    table); unknown keys are reported when the parameters are used."""
+    import json
+    import tomllib
+
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SettingsError("parameter file not found", path) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SettingsError(f"cannot read the parameter file ({exc})", path) from None
+    try:
+        data = json.loads(text) if path.suffix.lower() == ".json" else tomllib.loads(text)
+    except (json.JSONDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise SettingsError(f"not a valid {'JSON' if path.suffix.lower() == '.json' else 'TOML'} file ({exc})",
+                            path, "give a flat table of parameter = value") from None
+    if isinstance(data, dict) and isinstance(data.get("model"), dict):
+        data = data["model"]
+    if not isinstance(data, dict):
+        raise SettingsError("the parameter file must hold a table of parameter = value", path)
+    return data
+
+
 def _initial(run: dict, p: ModelParams):
     if run["initial"] == "lucas":
         return "given", spiral_initial(run["seed_primordia"], LUCAS_ANGLE_DEG, p, run["seed_ratio"])

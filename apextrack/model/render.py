@@ -28,7 +28,7 @@ distribution, multiplied by the camera gain, and given an offset and Gaussian re
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 import numpy as np
 import pandas as pd

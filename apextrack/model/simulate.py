@@ -25,13 +25,13 @@ whorled patterns from symmetric initial conditions.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, fields
 
 import numpy as np
 import pandas as pd
 
 from ..errors import SettingsError
-from .growth import GOLDEN_ANGLE_DEG, history_from_births
+from .growth import history_from_births
 
 #: Limit angle of the ⟨1, t⟩ sequence 1, t, t+1, 2t+1, … : 360 / (t + 1/φ).
 PHI = (1.0 + math.sqrt(5.0)) / 2.0

@@ -19,7 +19,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import SettingsError
-from .simulate import (GOLDEN_ANGLE_DEG, LUCAS_ANGLE_DEG, ModelParams, classify,
+from .growth import GOLDEN_ANGLE_DEG
+from .simulate import (LUCAS_ANGLE_DEG, ModelParams, classify,
                        contact_parastichies, limit_angle_deg, plastochron_ratio_of, simulate,
                        spiral_initial)
 
@@ -123,8 +124,6 @@ def bifurcation_figure(table: pd.DataFrame, path=None, ax=None):
     special initial conditions. Reference lines mark 180°, the golden angle and the ⟨1,3⟩ and
     ⟨1,4⟩ limit angles. Returns the matplotlib Figure (saved to ``path`` when given).
     """
-    import matplotlib
-
     if ax is None:
         from matplotlib.figure import Figure
 

@@ -152,7 +152,8 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
         Irregularities of the history (see :func:`~apextrack.model.growth.regular_history`).
     history : pandas.DataFrame, optional
         Explicit births (columns ``birth_time_h``, ``theta_deg``, optional ``co_initiated``),
-        e.g. from a simulation; replaces the regular history.
+        e.g. from a simulation, or any primordia table (``emergence_time_h`` is then taken as
+        the birth time); replaces the regular history.
     primordium_radius_um, primordium_max_radius_um : float
         Blob radius at birth and its cap (µm).
     brightness_at_birth, rise_h : float
@@ -235,8 +236,10 @@ def make_synthetic_stack(n_frames: int = 12, interval_h: float = 3.0, plastochro
                                permutation_prob=permutation_prob, timing_jitter_h=timing_jitter_h,
                                angle_jitter_deg=angle_jitter_deg, rng=rng)
     else:
+        if "birth_time_h" not in history.columns and "emergence_time_h" in history.columns:
+            history = history.rename(columns={"emergence_time_h": "birth_time_h"})  # a primordia table
         if not {"birth_time_h", "theta_deg"} <= set(history.columns):
-            raise SettingsError("a history needs columns birth_time_h and theta_deg")
+            raise SettingsError("a history needs columns birth_time_h (or emergence_time_h) and theta_deg")
         hist = history_from_births(history["birth_time_h"], history["theta_deg"],
                                    history["co_initiated"] if "co_initiated" in history else None)
     hist = hist[hist["birth_time_h"] <= t_end + 1e-9].reset_index(drop=True)
@@ -320,13 +323,15 @@ def _stem_paths(path: Path) -> tuple[Path, Path, Path, Path]:
 
 
 def write_synthetic(synth: SyntheticStack, path: str | Path, compress: bool = False) -> dict[str, Path]:
-    """Write a synthetic stack as an ImageJ hyperstack TIFF plus its ground truth.
+    """Write a synthetic stack as an ImageJ hyperstack TIFF (or OME-TIFF) plus its ground truth.
 
-    Writes ``path`` (uint16, axes as in ``synth.axes``; x/y pixel size in the resolution tags,
-    z step as ``spacing``, frame interval as ``finterval`` in seconds, unit ``um``, one label per
-    plane naming its channel), ``<stem>_truth.csv`` (per frame), ``<stem>_primordia.csv`` (per
-    primordium) and ``<stem>_params.json`` (every parameter and the apex centre per frame).
-    Every file is written atomically.
+    Writes ``path`` (uint16, axes as in ``synth.axes``). A name ending in ``.ome.tif(f)`` gives an
+    OME-TIFF (PhysicalSizeX/Y/Z in µm, TimeIncrement in s, channel names); any other ``.tif``
+    an ImageJ hyperstack (x/y pixel size in the resolution tags, z step as ``spacing``, frame
+    interval as ``finterval`` in seconds, unit ``um``, one label per plane naming its channel).
+    Beside it: ``<stem>_truth.csv`` (per frame), ``<stem>_primordia.csv`` (per primordium) and
+    ``<stem>_params.json`` (every parameter and the apex centre per frame). Every file is written
+    atomically.
 
     Parameters
     ----------
@@ -348,15 +353,25 @@ def write_synthetic(synth: SyntheticStack, path: str | Path, compress: bool = Fa
     n_c = len(synth.channel_names)
     n_t = synth.data.shape[0]
     n_z = synth.data.shape[synth.axes.index("Z")] if "Z" in synth.axes else 1
-    metadata = {"axes": synth.axes, "spacing": float(synth.z_step_um), "unit": "um",
-                "finterval": float(synth.interval_h) * 3600.0,
-                "Labels": list(synth.channel_names) * (n_t * n_z)}
-    if n_c > 1:
-        metadata["mode"] = "composite"
     buf = io.BytesIO()
     res = 1.0 / float(synth.pixel_size_um)
-    tifffile.imwrite(buf, synth.data, imagej=True, resolution=(res, res), metadata=metadata,
-                     photometric="minisblack", compression="zlib" if compress else None)
+    if path.name.lower().endswith((".ome.tif", ".ome.tiff")):
+        metadata = {"axes": synth.axes, "PhysicalSizeX": float(synth.pixel_size_um), "PhysicalSizeXUnit": "µm",
+                    "PhysicalSizeY": float(synth.pixel_size_um), "PhysicalSizeYUnit": "µm",
+                    "PhysicalSizeZ": float(synth.z_step_um), "PhysicalSizeZUnit": "µm",
+                    "TimeIncrement": float(synth.interval_h) * 3600.0, "TimeIncrementUnit": "s",
+                    "Channel": {"Name": list(synth.channel_names)}}
+        tifffile.imwrite(buf, synth.data, ome=True, metadata=metadata, photometric="minisblack",
+                         resolution=(res, res), resolutionunit="MICROMETER",
+                         compression="zlib" if compress else None)
+    else:
+        metadata = {"axes": synth.axes, "spacing": float(synth.z_step_um), "unit": "um",
+                    "finterval": float(synth.interval_h) * 3600.0,
+                    "Labels": list(synth.channel_names) * (n_t * n_z)}
+        if n_c > 1:
+            metadata["mode"] = "composite"
+        tifffile.imwrite(buf, synth.data, imagej=True, resolution=(res, res), metadata=metadata,
+                         photometric="minisblack", compression="zlib" if compress else None)
     try:
         atomic_write_bytes(stack_p, buf.getvalue())
     except OSError as exc:

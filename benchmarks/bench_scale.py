@@ -1,0 +1,243 @@
+"""Speed, memory and scaling benchmarks (run by hand, not in CI).
+
+    python benchmarks/bench_scale.py [--frames 10 20 40 80] [--batch 8] [--skip-batch]
+
+Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T timepoints of
+40×512×512 uint16 with their ground truth, then measures, side by side in one run:
+
+1. whole ``analyse`` wall time ÷ the time to read the stack and max-project every frame (target ≤ 3);
+2. apextrack's detection ÷ the naive ``skimage.feature.blob_log`` over the same scales (target: ≥ 20×
+   faster), with the accuracy of both against the ground truth;
+3. peak RSS against T (target: flat within 10 %) and wall time against T (target: linear, R² > 0.99);
+4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up).
+
+Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own. Results are printed
+and written to ``benchmarks/results.json``; ``RESULTS.md`` is written by hand from them.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+DATA = HERE / "data"
+SHAPE_ZYX = (40, 512, 512)
+PIXEL_UM, Z_UM, INTERVAL_H = 0.5, 1.5, 3.0
+
+
+def stack_path(n_frames: int) -> Path:
+    return DATA / f"bench_T{n_frames:03d}.tif"
+
+
+def generate(n_frames: int) -> Path:
+    """The benchmark stack of ``n_frames`` timepoints (generated once)."""
+    from apextrack.model import make_synthetic_stack, write_synthetic
+
+    p = stack_path(n_frames)
+    if p.exists():
+        return p
+    DATA.mkdir(parents=True, exist_ok=True)
+    t0 = time.perf_counter()
+    synth = make_synthetic_stack(n_frames=n_frames, shape_zyx=SHAPE_ZYX, pixel_size_um=PIXEL_UM, z_step_um=Z_UM,
+                                 interval_h=INTERVAL_H, apex_radius_um=22.0, seed=2026)
+    write_synthetic(synth, p)
+    print(f"generated {p.name} in {time.perf_counter() - t0:.0f} s", flush=True)
+    return p
+
+
+def _vm(key: str) -> int:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) * 1024
+    return -1
+
+
+def child_analyse(path: str, out: str) -> None:
+    """Run in a fresh process: one analysis; print wall time and peak RSS as JSON."""
+    from apextrack.pipeline import analyse
+
+    t0 = time.perf_counter()
+    res = analyse(path, out=out, overwrite=True, progress=False)
+    wall = time.perf_counter() - t0
+    print(json.dumps({"wall_s": wall, "peak_rss_bytes": _vm("VmHWM"), "timings_s": res.run["timings_s"],
+                      "n_primordia": res.summary["n_primordia"], "n_detections": res.summary["n_detections"]}))
+
+
+def child_read_project(path: str) -> None:
+    """Run in a fresh process: read every frame and max-project it (the floor of any analysis)."""
+    from apextrack.stack import read_stack
+
+    t0 = time.perf_counter()
+    st = read_stack(path)
+    acc = 0.0
+    for t in range(st.n_frames):
+        acc += float(st.frame(t).max(axis=0)[0, 0])
+    print(json.dumps({"wall_s": time.perf_counter() - t0, "peak_rss_bytes": _vm("VmHWM"), "check": acc}))
+
+
+def _run_child(*args) -> dict:
+    r = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True)
+    if r.returncode != 0:
+        raise RuntimeError(r.stderr[-3000:])
+    return json.loads(r.stdout.strip().splitlines()[-1])
+
+
+def _match(det_xy: np.ndarray, truth_xy: np.ndarray, max_um: float) -> tuple[int, int, int]:
+    """True positives, false positives, false negatives by optimal one-to-one matching
+    (scipy's Hungarian assignment) within ``max_um``."""
+    from scipy.optimize import linear_sum_assignment
+    from scipy.spatial.distance import cdist
+
+    if len(det_xy) == 0 or len(truth_xy) == 0:
+        return 0, len(det_xy), len(truth_xy)
+    d = cdist(det_xy, truth_xy)
+    cost = np.where(d <= max_um, d, 1e6)
+    r, c = linear_sum_assignment(cost)
+    tp = int(np.sum(d[r, c] <= max_um))
+    return tp, len(det_xy) - tp, len(truth_xy) - tp
+
+
+def detection_benchmark(path: Path) -> dict:
+    """apextrack's detector against the naive skimage blob_log on the same top views and scales."""
+    import pandas as pd
+    from skimage.feature import blob_log
+
+    from apextrack.detect import detect_blobs, scales_px
+    from apextrack.settings import Settings
+    from apextrack.stack import read_stack
+
+    s = Settings()
+    st = read_stack(path)
+    sig = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, PIXEL_UM, s.n_scales)
+    truth = pd.read_csv(str(path).replace(".tif", "_truth.csv"))
+    truth = truth[truth["visible"].astype(str).str.lower() == "true"]
+    views = [st.frame(t).max(axis=0) for t in range(st.n_frames)]
+    max_um = 4.0  # a match lies within half the smallest primordium diameter at birth (8 µm)
+
+    def score(found):
+        tp = fp = fn = 0
+        for t, xy in enumerate(found):
+            tt = truth[truth["frame"] == t][["x_um", "y_um"]].to_numpy(float)
+            a, b, c = _match(xy, tt, max_um)
+            tp, fp, fn = tp + a, fp + b, fn + c
+        prec = tp / max(tp + fp, 1)
+        rec = tp / max(tp + fn, 1)
+        return {"tp": tp, "fp": fp, "fn": fn, "precision": prec, "recall": rec,
+                "f1": 2 * prec * rec / max(prec + rec, 1e-12)}
+
+    t0 = time.perf_counter()
+    ours = []
+    for v in views:
+        df = detect_blobs(v, sig, min_snr=s.min_snr)
+        ours.append(df[["x_px", "y_px"]].to_numpy(float) * PIXEL_UM)
+    t_ours = time.perf_counter() - t0
+    # naive blob_log: same σ range and count, log spacing, image scaled to [0, 1]; its threshold
+    # is tuned on these very frames (best F1 over a grid) to give it its best accuracy
+    normed = [(v - v.min()) / max(float(v.max() - v.min()), 1e-9) for v in views]
+    best = None
+    for thr in (0.01, 0.02, 0.05, 0.1, 0.2):
+        t0 = time.perf_counter()
+        found = [blob_log(v, min_sigma=sig[0], max_sigma=sig[-1], num_sigma=len(sig), threshold=thr,
+                          log_scale=True)[:, [1, 0]] * PIXEL_UM for v in normed]
+        dt = time.perf_counter() - t0
+        sc = score(found)
+        if best is None or sc["f1"] > best["score"]["f1"]:
+            best = {"threshold": thr, "time_s": dt, "score": sc}
+    return {"frames": len(views), "sigmas_px": [float(x) for x in sig], "apextrack_s": t_ours,
+            "apextrack": score(ours), "blob_log_s": best["time_s"], "blob_log_threshold": best["threshold"],
+            "blob_log": best["score"], "speedup": best["time_s"] / t_ours}
+
+
+def batch_benchmark(n_stacks: int, workers_list=(1, 2)) -> dict:
+    from apextrack.batch import run_batch
+
+    src = stack_path(10)
+    folder = DATA / f"batch{n_stacks}"
+    folder.mkdir(parents=True, exist_ok=True)
+    for i in range(n_stacks):  # the T = 10 stack under N names (hard links: no extra disk)
+        p = folder / f"plant_{i + 1:02d}.tif"
+        if not p.exists():
+            os.link(src, p)
+    out = {}
+    for w in workers_list:
+        tmp = Path(tempfile.mkdtemp(prefix=f"bench_batch_{w}_"))
+        t0 = time.perf_counter()
+        res = run_batch(folder, tmp / "out", n_workers=w, progress=False)
+        out[w] = {"wall_s": time.perf_counter() - t0, "failed": res.n_failed}
+        shutil.rmtree(tmp, ignore_errors=True)
+        print(f"batch of {n_stacks} with {w} worker(s): {out[w]['wall_s']:.1f} s", flush=True)
+    return out
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--frames", type=int, nargs="+", default=[10, 20, 40, 80])
+    ap.add_argument("--batch", type=int, default=8)
+    ap.add_argument("--skip-batch", action="store_true")
+    args = ap.parse_args()
+    for n in sorted(set(args.frames) | {10}):
+        generate(n)
+    machine = {"cpus": os.cpu_count(), "platform": platform.platform(), "python": platform.python_version(),
+               "processor": platform.processor() or platform.machine(),
+               "mem_gb": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 1e9, 1),
+               "load_avg_at_start": os.getloadavg()}
+    print(json.dumps(machine), flush=True)
+    rows = []
+    for n in args.frames:
+        p = stack_path(n)
+        with tempfile.TemporaryDirectory(prefix="bench_") as tmp:
+            rp = _run_child("--child-read", str(p))
+            an = _run_child("--child-analyse", str(p), str(Path(tmp) / "res"))
+        row = {"T": n, "stack_gb": p.stat().st_size / 1e9, "read_project_s": rp["wall_s"], "analyse_s": an["wall_s"],
+               "ratio": an["wall_s"] / rp["wall_s"], "peak_rss_mb": an["peak_rss_bytes"] / 1e6,
+               "read_peak_rss_mb": rp["peak_rss_bytes"] / 1e6, "timings_s": an["timings_s"],
+               "n_primordia": an["n_primordia"], "n_detections": an["n_detections"]}
+        rows.append(row)
+        print(f"T={n:3d}  read+project {row['read_project_s']:7.1f} s  analyse {row['analyse_s']:7.1f} s  "
+              f"ratio {row['ratio']:5.2f}  peak RSS {row['peak_rss_mb']:7.0f} MB  stages {an['timings_s']}", flush=True)
+    Ts = np.array([r["T"] for r in rows], float)
+    walls = np.array([r["analyse_s"] for r in rows])
+    rss = np.array([r["peak_rss_mb"] for r in rows])
+    slope, icpt = np.polyfit(Ts, walls, 1)
+    pred = slope * Ts + icpt
+    r2 = 1 - np.sum((walls - pred) ** 2) / np.sum((walls - walls.mean()) ** 2) if len(Ts) > 2 else float("nan")
+    det = detection_benchmark(stack_path(10))
+    print(f"detection on {det['frames']} top views: apextrack {det['apextrack_s']:.2f} s (F1 {det['apextrack']['f1']:.3f}), "
+          f"blob_log {det['blob_log_s']:.2f} s (F1 {det['blob_log']['f1']:.3f}, threshold {det['blob_log_threshold']}), "
+          f"speed-up {det['speedup']:.1f}×", flush=True)
+    batch = {} if args.skip_batch else batch_benchmark(args.batch)
+    summary = {
+        "1_analyse_over_read_project": {str(r["T"]): r["ratio"] for r in rows},
+        "2_detection_speedup_vs_blob_log": det["speedup"],
+        "2_f1_apextrack_vs_blob_log": [det["apextrack"]["f1"], det["blob_log"]["f1"]],
+        "3_peak_rss_max_over_min": float(rss.max() / rss.min()),
+        "3_wall_linear_r2": float(r2), "3_wall_s_per_frame": float(slope), "3_wall_intercept_s": float(icpt),
+        "4_batch_speedup_2_over_1_worker": (batch[1]["wall_s"] / batch[2]["wall_s"]) if batch else None,
+    }
+    print("\n=== side by side ===")
+    for k, v in summary.items():
+        print(f"{k:40s} {v}")
+    result = {"machine": machine, "load_avg_at_end": os.getloadavg(), "scaling": rows, "detection": det,
+              "batch": batch, "summary": summary, "date": time.strftime("%Y-%m-%d %H:%M")}
+    (HERE / "results.json").write_text(json.dumps(result, indent=2, default=float) + "\n", encoding="utf-8")
+
+
+if __name__ == "__main__":  # dask worker processes are spawned: guard the entry point
+    if len(sys.argv) > 1 and sys.argv[1] == "--child-analyse":
+        child_analyse(sys.argv[2], sys.argv[3])
+    elif len(sys.argv) > 1 and sys.argv[1] == "--child-read":
+        child_read_project(sys.argv[2])
+    else:
+        main()
