@@ -211,7 +211,8 @@ def apex_region(view: np.ndarray, smooth_px: float = 3.0, close_px: float = 0.0)
 
     The region is the largest connected part of the view (after smoothing and hole filling)
     above a quarter of the way from the background (2nd percentile) to Otsu's threshold; its
-    radius is that of the disc of the same area. ``close_px`` (e.g. twice the largest primordium
+    radius is the 95th percentile of the distances of its pixels from its centroid (so that
+    primordia on the flanks, which make the region irregular, lie within it). ``close_px`` (e.g. twice the largest primordium
     radius) first joins bright pieces closer than that into one region.
 
     Examples
@@ -248,9 +249,10 @@ def apex_region(view: np.ndarray, smooth_px: float = 3.0, close_px: float = 0.0)
     if n > 1:
         sizes = ndi.sum(mask, labels, index=np.arange(1, n + 1))
         mask = labels == (1 + int(np.argmax(sizes)))
-    area = float(mask.sum())
     yy, xx = np.nonzero(mask)
-    return float(xx.mean()) * f, float(yy.mean()) * f, math.sqrt(area / math.pi) * f
+    cx, cy = float(xx.mean()), float(yy.mean())
+    radius = float(np.percentile(np.hypot(xx - cx, yy - cy), 95)) + 0.5
+    return cx * f, cy * f, radius * f
 
 
 def _empty() -> pd.DataFrame:

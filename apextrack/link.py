@@ -145,7 +145,8 @@ def _fill_centres(centres: np.ndarray, has_data: np.ndarray, times: np.ndarray) 
 
 
 def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float = 1.0,
-               rim: bool = True, centre_hint: pd.DataFrame | None = None) -> MotionModel | None:
+               rim: bool = True, centre_hint: pd.DataFrame | None = None,
+               fixed_centre: bool = False) -> MotionModel | None:
     """Fit the spiral-similarity motion of the primordia (growth, rotation, centre per frame).
 
     Every detection of a track k in frame f is modelled as ``z = c_f + exp(λ(t_f − t_ref))·a_k``
@@ -172,6 +173,11 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         A rough centre per frame (``frame``, ``x_um``, ``y_um``, e.g. the dome seen in the
         image): used to recognise the primordia seen appearing, and to fix the common vector
         when the rim cannot be used.
+    fixed_centre : bool
+        One centre for the whole record (the tracks are registered to one frame of reference).
+        The outward motion then fixes the centre by itself, without the rim: a free centre per
+        frame (or a drifting one) trades off against the centre's position, since a drift d
+        looks like a centre shift of d/γ.
 
     Returns
     -------
@@ -196,6 +202,16 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     groups = [g for _, g in tracks.groupby("track_id", sort=True) if g["time_h"].nunique() >= min_frames]
     if len(groups) < 3:
         return None
+    if fixed_centre:
+        frames = np.sort(tracks["frame"].unique())
+        times = tracks.groupby("frame")["time_h"].first().reindex(frames).to_numpy(float)
+        # every detection assigned to one pseudo-frame: the per-frame centres become one centre
+        one = fit_motion(tracks.assign(frame=int(frames[0])), min_frames, max_rate_per_h, rim=False)
+        if one is None:
+            return None
+        return MotionModel(one.gamma_per_h, one.omega_rad_per_h, times,
+                           np.full(len(times), one.frame_centres[0], dtype=complex), one.t_ref_h,
+                           rms_um=one.rms_um, n_tracks=one.n_tracks, offsets=one.offsets)
     frame_list = np.sort(tracks["frame"].unique())
     frame_time = tracks.groupby("frame")["time_h"].first().reindex(frame_list).to_numpy(float)
     n_f = len(frame_list)
@@ -501,7 +517,8 @@ def track_quality(tracks: pd.DataFrame, motion: MotionModel | None = None, min_t
 
 def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 2, *,
                 jump_um: float | None = None, min_track_frames: int = 2,
-                growth_aware: bool = True, centre_hint: pd.DataFrame | None = None) -> tuple[pd.DataFrame, dict]:
+                growth_aware: bool = True, centre_hint: pd.DataFrame | None = None,
+                fixed_centre: bool = False) -> tuple[pd.DataFrame, dict]:
     """Link detections into tracks, growth-aware, with jump splitting and quality columns.
 
     1. Nearest-neighbour linking (:func:`link_detections` without a model).
@@ -528,6 +545,8 @@ def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 
         False: nearest-neighbour linking only.
     centre_hint : DataFrame, optional
         Rough centre per frame for :func:`fit_motion`.
+    fixed_centre : bool
+        One apex centre for the whole record (registered detections); see :func:`fit_motion`.
 
     Returns
     -------
@@ -543,10 +562,10 @@ def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 
                   "memory": int(memory), "jump_um": jump}
     model = None
     if growth_aware and not tracks.empty:
-        model = fit_motion(tracks, centre_hint=centre_hint)
+        model = fit_motion(tracks, centre_hint=centre_hint, fixed_centre=fixed_centre)
         if model is not None:
             tracks2 = link_detections(detections, search_range_um, memory, motion=model)
-            model2 = fit_motion(tracks2, centre_hint=centre_hint)
+            model2 = fit_motion(tracks2, centre_hint=centre_hint, fixed_centre=fixed_centre)
             tracks = tracks2
             model = model2 if model2 is not None else model
             info["method"] = "growth-aware prediction (spiral similarity about a drifting centre)"

@@ -216,8 +216,9 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     ``y_um`` of detections and every centre estimate are in the frame of reference of the
     first frame; ``x_px``/``y_px`` stay the pixel positions in the frame's own top view.
 
-    Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame
-    (e.g. to write the top views) so that no more than one frame is held in memory. When
+    Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame with
+    the top view resampled into the first frame's frame of reference (e.g. to write the top
+    views), so that no more than one frame is held in memory. When
     ``extra`` is a dict it receives the ``registration`` table.
     """
     from .apex import _tilt_vector, fit_dome
@@ -258,8 +259,6 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             view = shell_projection(vol, hm, dz, s.shell_depth_um)
         else:
             view = top_view(vol, "max")
-        if on_frame is not None:
-            on_frame(t, view)
         rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
         if s.detect_3d and vol.ndim == 3:
             blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
@@ -289,6 +288,10 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
         apex_px = (dome["x_um"] / px, dome["y_um"] / px) if dome is not None else (rx, ry)
         row = reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
+        if on_frame is not None:
+            # the top view resampled into the first frame's frame of reference: it lines up
+            # with the registered coordinates of every table
+            on_frame(t, reg.warp_to_reference(view))
         # coordinates into the first frame's frame of reference
         xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
         det["x_um"], det["y_um"] = xr * px, yr * px
@@ -484,17 +487,20 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         t0 = time.perf_counter()
         tracks, link_info = link_tracks(detections, s.link_search_um, s.link_memory, jump_um=s.link_jump_um,
                                         min_track_frames=s.min_track_frames, growth_aware=s.link_growth_aware,
-                                        centre_hint=centres[["frame", "x_um", "y_um"]])
+                                        centre_hint=centres[["frame", "x_um", "y_um"]],
+                                        fixed_centre=False)
         motion = link_info.pop("model", None)
         centres, centre_info = choose_centres(tracks, centres, s.centre_method, s.centre_um)
         if (s.centre_um is None and s.centre_method in ("auto", "motion") and motion is not None
                 and motion.n_new >= 3):
-            # the linking's motion fit pins the centre with the rim on which new primordia appear
+            # the linking's motion fit: one centre for registered tracks, or a centre per frame
+            # pinned by the rim on which new primordia appear
+            how = "motion+rim"
             mc = motion.centres_table(centres["frame"], centres["time_h"])
             centres = centres.assign(x_um=mc["x_um"].to_numpy(), y_um=mc["y_um"].to_numpy(),
-                                     method="motion+rim", centre_sd_um=mc["centre_sd_um"].to_numpy())
-            centre_info = {"requested": s.centre_method, "used": "motion+rim",
-                           "motion_fit": link_info.get("motion"), "without_rim": centre_info}
+                                     method=how, centre_sd_um=mc["centre_sd_um"].to_numpy())
+            centre_info = {"requested": s.centre_method, "used": how,
+                           "motion_fit": link_info.get("motion"), "other_estimates": centre_info}
         lap("link", t0)
 
         t0 = time.perf_counter()

@@ -126,7 +126,7 @@ def match_points(prev_xy: np.ndarray, cur_xy: np.ndarray, shift_guess, tol: floa
     """Match two point sets related by a small rotation, shift and growth; fit a similarity.
 
     Returns ``{"scale", "R", "T", "n", "rms", "src", "dst"}`` (pixels) or None with fewer than
-    three matches.
+    three matches or matches nearly on one line.
     """
     prev_xy = np.asarray(prev_xy, float).reshape(-1, 2)
     cur_xy = np.asarray(cur_xy, float).reshape(-1, 2)
@@ -157,6 +157,11 @@ def match_points(prev_xy: np.ndarray, cur_xy: np.ndarray, shift_guess, tol: floa
         if ia2.size == ia.size and np.array_equal(ia2, ia) and np.array_equal(ib2, ib):
             break
         ia, ib = ia2, ib2
+    # primordia all on one line (e.g. two opposite rows) cannot tell a shift along the line from
+    # growth about the centre: such a fit is not used
+    spread = np.linalg.svd(prev_xy[ia] - prev_xy[ia].mean(axis=0), compute_uv=False)
+    if spread.size < 2 or spread[1] < 0.2 * spread[0]:
+        return None
     s, r, t = fit_similarity(prev_xy[ia], cur_xy[ib])
     pred = s * prev_xy[ia] @ r.T + t
     rms = float(np.sqrt(np.mean(np.sum((pred - cur_xy[ib]) ** 2, axis=1))))
@@ -212,6 +217,9 @@ class Registrar:
         """
         pts = np.asarray(points_xy_px, float).reshape(-1, 2)
         apex = self.field_centre if apex_xy_px is None else np.asarray(apex_xy_px, float)
+        ny, nx = self.shape_yx
+        if not (np.isfinite(apex).all() and 0 <= apex[0] < nx and 0 <= apex[1] < ny):
+            apex = self.field_centre  # an apex estimate outside the field cannot be right
         px = self.pixel_size_um
         step = np.eye(3)
         method, n, rms, scale = "reference", 0, math.nan, math.nan
@@ -226,13 +234,21 @@ class Registrar:
             guess = phase_shift(self._prev_view, view)
             fit = match_points(self._prev_pts, pts, guess, self.match_tol_px, self.max_rotation_deg,
                                pivot=self._prev_centre)
+            shift = None
             if fit is not None:
                 r, s, tvec = fit["R"], fit["scale"], fit["T"]
                 phi = math.degrees(math.atan2(r[0, 1], r[0, 0]))
                 f = self.field_centre
                 shift = tvec - (np.eye(2) - r) @ f - (1.0 - s) * (r @ self._prev_centre)
+                # a specimen does not jump farther than a primordium may move between frames:
+                # a larger step means the few matched primordia did not constrain the fit
+                if float(np.hypot(*shift)) > self.match_tol_px:
+                    shift = None
+            if shift is not None:
                 step = rigid_matrix(phi, shift, f)
                 method, n, rms, scale = "primordia", fit["n"], fit["rms"] * px, s
+            elif float(np.hypot(*guess)) > self.match_tol_px:
+                method = "skipped (no consistent motion found)"
             else:
                 step = rigid_matrix(0.0, guess, self.field_centre)
                 method = "phase correlation (translation only)"
@@ -264,6 +280,22 @@ class Registrar:
         x = np.asarray(x_px, float)
         y = np.asarray(y_px, float)
         return inv[0, 0] * x + inv[0, 1] * y + inv[0, 2], inv[1, 0] * x + inv[1, 1] * y + inv[1, 2]
+
+    def warp_to_reference(self, view: np.ndarray, order: int = 1) -> np.ndarray:
+        """Resample the frame last passed to :meth:`update` into frame 0's frame of reference,
+        so that it lines up with the registered coordinates (``x_um``, ``y_um``). Pixels that
+        come from outside the frame take the frame's lowest value."""
+        from scipy import ndimage as ndi
+
+        view = np.asarray(view, np.float32)
+        m = self._current  # frame-0 (x, y, 1) → this frame's (x, y, 1)
+        if np.allclose(m, np.eye(3)):
+            return view
+        # ndimage works in (row, col) = (y, x) order
+        matrix = np.array([[m[1, 1], m[1, 0]], [m[0, 1], m[0, 0]]])
+        offset = np.array([m[1, 2], m[0, 2]])
+        return ndi.affine_transform(view, matrix, offset=offset, order=order, mode="constant",
+                                    cval=float(view.min()) if view.size else 0.0)
 
     @property
     def current_rotation_deg(self) -> float:

@@ -779,6 +779,7 @@ def _check(stack: Stack) -> None:
                          stack.path, "give a stack with at least 2 timepoints (or say which axis is time with --time-axis)")
     ny, nx = stack.shape_yx
     if ny < 8 or nx < 8:
-        raise InputError(f"images of {ny}×{nx} pixels are too small", stack.path)
+        raise InputError(f"images of {ny}×{nx} pixels are too small", stack.path,
+                         "give images of at least 8×8 pixels (check that Y and X are the image axes)")
     if np.dtype(stack.data.dtype).kind not in "uif b":
         raise InputError(f"unsupported pixel type {stack.data.dtype}", stack.path)

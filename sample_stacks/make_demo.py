@@ -28,9 +28,9 @@ DEMOS = {
     # Coralbell mutant line CB-7 "twinrow": a narrower apex initiating alternate (distichous)
     # primordia, imaged with a membrane marker as a second channel.
     "coralbell_distichous.tif": dict(
-        n_frames=12, interval_h=4.0, plastochron_h=8.0, divergence_deg=180.0,
-        pixel_size_um=1.0, z_step_um=5.0, shape_zyx=(6, 80, 80), apex_radius_um=14.0,
-        plastochron_ratio=1.5, primordium_radius_um=4.0, primordium_max_radius_um=8.0,
+        n_frames=14, interval_h=3.0, plastochron_h=8.0, divergence_deg=180.0,
+        pixel_size_um=1.2, z_step_um=5.0, shape_zyx=(5, 104, 104), apex_radius_um=16.0,
+        plastochron_ratio=1.35, primordium_radius_um=3.5, primordium_max_radius_um=6.0,
         brightness_at_birth=0.8, drift_um_per_frame=(-0.3, 0.25, 0.0), bleach_per_frame=0.01,
         peak_photons=110.0,
         theta0_deg=60.0, membrane=True, seed=11),
