@@ -205,8 +205,13 @@ def _run_simulate(args) -> int:
     from .model.patterns import load_params, run_simulation
 
     params = load_params(args.params) if args.params else None
-    res = run_simulation(args.pattern, args.out, params=params, render=args.render, seed=args.seed,
-                         overwrite=args.overwrite)
+    try:
+        res = run_simulation(args.pattern, args.out, params=params, render=args.render, seed=args.seed,
+                             overwrite=args.overwrite)
+    except SettingsError as exc:
+        if args.params and exc.path is None:  # a bad value of the parameter file: name the file
+            raise SettingsError(exc.what, args.params, exc.hint) from None
+        raise
     s = res.summary
     mean = s.get("divergence_mean_deg")
     print(f"{args.pattern}: {len(res.primordia)} primordia, mode {s.get('mode')}, divergence "

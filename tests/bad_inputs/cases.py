@@ -385,6 +385,20 @@ def b_not_a_results_folder(command):
     return build
 
 
+def _simulate_case(name):
+    def build(ctx):
+        return ["simulate", "--pattern", "spiral", "--params", str(HERE / name), "--out", str(ctx.tmp / "sim")], \
+            HERE / name
+    build.__name__ = f"b_{Path(name).stem}"
+    return build
+
+
+def b_fit_not_a_results_folder(ctx):
+    d = ctx.tmp / "empty_folder"
+    d.mkdir()
+    return ["fit", str(d)], d
+
+
 def b_truth_wrong_columns(ctx):
     p = HERE / "truth_wrong_columns.csv"
     return ["score", str(ctx.good_results), str(p)], p
@@ -435,6 +449,11 @@ CASES: list[Case] = [
     Case("settings_check_out_of_range", "settings", b_settings_check, ("confidence",)),
     Case("batch_folder_without_stacks", "batch", b_batch_empty_folder, ("no stacks found",)),
     Case("truth_wrong_columns", "score", b_truth_wrong_columns, ("lacks column",)),
+    Case("simulate_params_unknown_key", "simulate", _simulate_case("simulate_params_unknown_key.toml"),
+         ("unknown simulation parameter", "blah")),
+    Case("simulate_params_out_of_range", "simulate", _simulate_case("simulate_params_out_of_range.toml"),
+         ("record_primordia",)),
+    Case("fit_not_a_results_folder", "fit", b_fit_not_a_results_folder, ("missing",)),
 ]
 for _cmd in ("compare", "score", "view"):
     CASES.append(Case(f"not_a_results_folder_{_cmd}", _cmd, b_not_a_results_folder(_cmd), ("folder",)))
