@@ -219,11 +219,31 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
             shift = rc0 * math.tan(math.radians(tilt))
             u = a / max(np.hypot(*a), 1e-12) if tilt else np.zeros(2)
             starts.append([tx + shift * u[0], ty + shift * u[1], tz, math.log(rc0), a[0], a[1]])
+    def jacobian(params, x, y, z, up):
+        # analytic derivatives of _dome_residual (the residual r = pa + cb·pz + ρ²/(2·Rc))
+        sx, sy, sz, log_rc, ax, ay = params
+        rc = math.exp(log_rc)
+        a2 = ax * ax + ay * ay
+        if a2 >= 0.99:
+            return np.zeros((len(x), 6))
+        cb = math.sqrt(1.0 - a2)
+        px, py, pz = x - sx, y - sy, up * (z - sz)
+        pa = px * ax + py * ay
+        rho2 = px * px + py * py - pa * pa - 2.0 * cb * pz * pa + a2 * pz * pz
+        k = 1.0 / (2.0 * rc)
+        d_px = ax + k * (2 * px - 2 * pa * ax - 2 * cb * pz * ax)
+        d_py = ay + k * (2 * py - 2 * pa * ay - 2 * cb * pz * ay)
+        d_pz = cb + k * (-2 * cb * pa + 2 * a2 * pz)
+        dcb_ax, dcb_ay = -ax / cb, -ay / cb
+        d_ax = px + dcb_ax * pz + k * (-2 * pa * px - 2 * dcb_ax * pz * pa - 2 * cb * pz * px + 2 * ax * pz * pz)
+        d_ay = py + dcb_ay * pz + k * (-2 * pa * py - 2 * dcb_ay * pz * pa - 2 * cb * pz * py + 2 * ay * pz * pz)
+        return np.column_stack([-d_px, -d_py, -up * d_pz, -rho2 * k, d_ax, d_ay])
+
     best = None
     for p0 in starts:
         try:
-            fit = least_squares(_dome_residual, p0, args=(x, y, z, up), loss="soft_l1", f_scale=robust_um,
-                                x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=100)
+            fit = least_squares(_dome_residual, p0, jac=jacobian, args=(x, y, z, up), loss="soft_l1",
+                                f_scale=robust_um, x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=100)
         except ValueError:
             continue
         if best is None or fit.cost < best.cost:
@@ -238,6 +258,29 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
             "tilt_deg": float(math.degrees(math.asin(sb))),
             "tilt_direction_deg": float(np.mod(math.degrees(math.atan2(-ay, ax)), 360.0)) if sb > 0 else 0.0,
             "up": int(up), "rms_um": mad, "n": int(len(x))}
+
+
+def dome_is_plausible(dome: dict | None, field_xy_um) -> bool:
+    """Can a dome fit be used for the apex centre and the tilt?
+
+    A fit whose summit lies outside the field of view, or whose radius of curvature exceeds
+    four times the field's width (the surface points then lie on a plane or a saddle, e.g. a
+    dome cut by a few slices), does not locate a summit.
+
+    Examples
+    --------
+    >>> dome_is_plausible({"x_um": 50.0, "y_um": 40.0, "curvature_um": 45.0}, (100.0, 100.0))
+    True
+    >>> dome_is_plausible({"x_um": -400.0, "y_um": 40.0, "curvature_um": 3e11}, (100.0, 100.0))
+    False
+    """
+    if dome is None:
+        return False
+    w, h = float(field_xy_um[0]), float(field_xy_um[1])
+    vals = (dome["x_um"], dome["y_um"], dome["curvature_um"])
+    if not all(np.isfinite(vals)):
+        return False
+    return bool(0 <= dome["x_um"] <= w and 0 <= dome["y_um"] <= h and 0 < dome["curvature_um"] <= 4 * max(w, h))
 
 
 def dome_height(x_um, y_um, dome: dict) -> np.ndarray:

@@ -122,7 +122,8 @@ def order_primordia(tracks: pd.DataFrame, co_initiation_h: float | None = None,
     min_track_frames : int
         Tracks with fewer detections are left out of the ranking (they stay in the tracks
         table, flagged ``short``), unless they touch the first or last frame of the record
-        (a primordium just born, or about to leave the field of view, cannot be seen longer).
+        (a primordium just born, or about to leave the field of view, cannot be seen longer)
+        and are not flagged ``unconfirmed``.
     centre_sd_um : float
         Uncertainty of the apex centre (µm); it moves r by up to as much.
     growth_rate_per_h : float, optional
@@ -157,6 +158,10 @@ def order_primordia(tracks: pd.DataFrame, co_initiation_h: float | None = None,
     n_det = g.size()
     f_min, f_max = g["frame"].min(), g["frame"].max()
     censored = (f_min == f_first) | (f_max == f_last)
+    if "track_flags" in tracks:
+        # a blob seen once at an end of the record that the motion cannot explain (link.py)
+        unconfirmed = g["track_flags"].first().fillna("").astype(str).str.contains("unconfirmed")
+        censored &= ~unconfirmed.reindex(n_det.index).to_numpy()
     keep_ids = n_det.index[(n_det >= min_track_frames) | censored]
     info["tracks_left_out"] = [int(k) for k in n_det.index.difference(keep_ids)]
     tr = tracks[tracks["track_id"].isin(keep_ids) & (tracks["r_um"] > 0)].copy()

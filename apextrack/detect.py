@@ -43,10 +43,12 @@ from scipy import ndimage as ndi
 DETECTION_COLUMNS = ["x_px", "y_px", "radius_px", "sigma_px", "intensity", "background", "noise",
                      "snr", "integrated_intensity", "response"]
 
-#: Fewest coarse pixels per σ kept when a scale is evaluated on a decimated grid.
-MIN_COARSE_SIGMA = 1.6
-#: Smoothing (in fine pixels, × the decimation factor) applied before decimating.
-ANTIALIAS_PER_FACTOR = 0.8
+#: Fit windows at least this wide (±px, i.e. σ ≳ 6 px) are averaged in 2×2 blocks before the
+#: Gaussian fit (see :func:`_gauss_fit`).
+BIN_FIT_HALF = 16
+#: Fewest coarse pixels per σ (of the smallest scale) kept when the LoG is evaluated on a
+#: decimated grid: the part of the response the coarse grid cannot hold is then under 1 %.
+MIN_COARSE_SIGMA = 1.25
 
 
 def scales_px(diameter_min_um: float, diameter_max_um: float, pixel_size_um: float, n_scales: int) -> np.ndarray:
@@ -83,48 +85,90 @@ def _robust_sd(values: np.ndarray) -> float:
 
 
 def _decimation(sigma: float, max_factor: int = 8) -> int:
+    """Largest power of two ``f`` (≤ ``max_factor``) that keeps σ/f ≥ :data:`MIN_COARSE_SIGMA`."""
     f = 1
     while f * 2 <= max_factor and sigma / (f * 2) >= MIN_COARSE_SIGMA:
         f *= 2
     return f
 
 
-class _Pyramid:
-    """Smoothed and decimated copies of one image, made on demand."""
+def _fast_size(n: int, f: int) -> int:
+    """A size ≥ ``n``, a multiple of ``f``, whose quotient by ``f`` is a fast FFT length."""
+    from scipy import fft as sfft
 
-    def __init__(self, img: np.ndarray):
-        self.img = img
-        self.levels: dict[int, np.ndarray] = {1: img}
+    return f * sfft.next_fast_len(-(-n // f), real=True)
 
-    def level(self, f: int) -> np.ndarray:
-        if f not in self.levels:
-            prev = self.level(f // 2)
-            # smoothing from the previous level's ANTIALIAS·(f/2) to ANTIALIAS·f (fine px)
-            a_prev = 0.0 if f == 2 else ANTIALIAS_PER_FACTOR * f / 2
-            extra = math.sqrt((ANTIALIAS_PER_FACTOR * f) ** 2 - a_prev ** 2) / (f // 2)
-            self.levels[f] = ndi.gaussian_filter(prev, extra, mode="nearest")[::2, ::2]
-        return self.levels[f]
 
-    @staticmethod
-    def antialias(f: int) -> float:
-        return 0.0 if f == 1 else ANTIALIAS_PER_FACTOR * f
+def log_stack(image: np.ndarray, sigmas, factor: int | None = None) -> tuple[int, np.ndarray]:
+    """Scale-normalised negative LoG at every σ, all on one grid decimated by ``factor``.
+
+    The image is padded (edge values, by more than 4σ of the largest scale) and Fourier
+    transformed once; each scale multiplies the spectrum by the exact transfer function of
+    ``-σ²∇²G_σ``, ``σ²|ω|²·exp(−σ²|ω|²/2)``, keeps the band the coarse grid can hold (an ideal
+    low-pass, so no separate anti-alias smoothing is needed) and transforms back at the coarse
+    size. ``factor`` (a power of two) defaults to the largest that keeps ≥ :data:`MIN_COARSE_SIGMA`
+    coarse pixels per σ of the smallest scale; the response the coarse grid cannot hold is then
+    below 1 % of the peak response.
+
+    Returns ``(factor, cube)``: ``cube[k, i, j]`` is the response at scale ``sigmas[k]`` at fine
+    pixel ``(i·factor, j·factor)``.
+    """
+    from scipy import fft as sfft
+
+    img = np.asarray(image, dtype=np.float32)
+    sig = np.atleast_1d(np.asarray(sigmas, dtype=float))
+    f = _decimation(float(sig.min())) if factor is None else int(factor)
+    ny, nx = img.shape
+    m = f * int(math.ceil((4.0 * float(sig.max()) + 2.0) / f))  # margin, a multiple of f
+    py, px = _fast_size(ny + 2 * m, f), _fast_size(nx + 2 * m, f)
+    pad = np.pad(img, ((m, py - ny - m), (m, px - nx - m)), mode="edge")
+    spec = sfft.rfft2(pad)
+    my, mx = py // f, px // f
+    if f > 1:
+        spec = np.concatenate([spec[: my // 2, : mx // 2 + 1], spec[py - my // 2:, : mx // 2 + 1]])
+    wy = (2 * np.pi * sfft.fftfreq(my, d=f)).astype(np.float32)
+    wx = (2 * np.pi * sfft.rfftfreq(mx, d=f)).astype(np.float32)
+    w2 = wy[:, None] ** 2 + wx[None, :] ** 2
+    oy, ox = m // f, m // f
+    cy, cx = -(-ny // f), -(-nx // f)
+    cube = np.empty((len(sig), cy, cx), np.float32)
+    norm = np.float32(1.0 / (f * f))
+    for k, s in enumerate(sig):
+        sw = np.float32(s * s) * w2
+        r = sfft.irfft2(spec * (norm * sw * np.exp(-0.5 * sw)), s=(my, mx))
+        cube[k] = r[oy:oy + cy, ox:ox + cx]
+    return f, cube
 
 
 def pyramid_log(image: np.ndarray, sigmas) -> list[tuple[int, np.ndarray]]:
-    """Scale-normalised negative LoG at every σ, each on its own decimated grid.
+    """Scale-normalised negative LoG at every σ on a decimated grid (see :func:`log_stack`).
 
     Returns a list of ``(factor, response)``: ``response[i, j]`` is the response at fine pixel
-    ``(i·factor, j·factor)``. With ``factor == 1`` this equals :func:`log_scale_space`.
+    ``(i·factor, j·factor)``. It matches :func:`log_scale_space` (the full-resolution filter) to
+    within the sampling of that filter's kernels.
     """
-    img = np.asarray(image, dtype=np.float32)
-    pyr = _Pyramid(img)
-    out = []
-    for s in np.atleast_1d(sigmas):
-        f = _decimation(float(s))
-        base = pyr.level(f)
-        sc = math.sqrt(max(float(s) ** 2 - pyr.antialias(f) ** 2, 0.25)) / f
-        out.append((f, -(float(s) / f) ** 2 * ndi.gaussian_laplace(base, sc, mode="nearest")))
-    return out
+    f, cube = log_stack(image, sigmas)
+    return [(f, r) for r in cube]
+
+
+def _local_maxima(r: np.ndarray, thr: float) -> tuple[np.ndarray, np.ndarray]:
+    """Pixels above ``thr`` not lower than any of their 8 neighbours (edges replicated): the
+    same pixels as ``r == maximum_filter(r, 3, mode="nearest")``, tested only where ``r > thr``."""
+    ny, nx = r.shape
+    m = r > thr
+    if nx > 1:  # the two neighbours along x on the whole array (cheap, contiguous)
+        m[:, 1:] &= r[:, 1:] >= r[:, :-1]
+        m[:, :-1] &= r[:, :-1] >= r[:, 1:]
+    ys, xs = np.nonzero(m)
+    if ys.size == 0:
+        return ys, xs
+    v = r[ys, xs]
+    keep = np.ones(ys.size, bool)
+    xl, xr = np.maximum(xs - 1, 0), np.minimum(xs + 1, nx - 1)
+    for dy in (-1, 1):
+        yy = np.clip(ys + dy, 0, ny - 1)
+        keep &= (v >= r[yy, xs]) & (v >= r[yy, xl]) & (v >= r[yy, xr])
+    return ys[keep], xs[keep]
 
 
 def _parabola_offset(a, b, c):
@@ -135,75 +179,127 @@ def _parabola_offset(a, b, c):
     return np.clip(np.nan_to_num(off), -0.5, 0.5)
 
 
-def _sample(resp: np.ndarray, f: int, y: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """Bilinear sample of a response on grid ``f`` at fine positions (y, x)."""
-    return ndi.map_coordinates(resp, [y / f, x / f], order=1, mode="nearest")
-
-
 def _gauss_fit(img: np.ndarray, y0: np.ndarray, x0: np.ndarray, s0: np.ndarray, half: int,
-               n_iter: int = 12):
+               n_iter: int = 12, bin_px: int = 1):
     """Least-squares fit of ``B + A·exp(-((x-x0)²+(y-y0)²)/(2s²))`` to windows of ±``half`` px
-    around each start point, all blobs at once (damped Gauss–Newton).
+    around each start point, all blobs at once (damped Gauss–Newton / Levenberg–Marquardt).
+
+    A blob stops iterating once its accepted position step is under 0.002 px; the model and
+    its Jacobian are evaluated in float32 (the 5×5 normal equations are solved in float64).
+    With ``bin_px = 2`` (for wide blobs) the window is averaged in 2×2 blocks first: every pixel
+    still counts, and the block mean of a Gaussian of s.d. ``s`` is, to within (0.25/s²)², a
+    Gaussian of variance ``s² + 1/4`` at the block centre, which the fit undoes for ``s`` and ``A``
+    (the position is unbiased by symmetry).
 
     Returns arrays ``x, y, s, A, B, ok``.
     """
     k = len(y0)
     ny, nx = img.shape
-    off = np.arange(-half, half + 1)
+    b = int(bin_px)
+    off = np.arange(-half, half + 1) if b == 1 else np.arange(-half, half + 2)
     cy = np.rint(y0).astype(int)
     cx = np.rint(x0).astype(int)
     rows = np.clip(cy[:, None] + off[None, :], 0, ny - 1)
     cols = np.clip(cx[:, None] + off[None, :], 0, nx - 1)
-    win = img[rows[:, :, None], cols[:, None, :]].astype(np.float64).reshape(k, -1)
-    gy = np.repeat(rows.astype(float), len(off), axis=1)  # (k, w*w) row coordinate
-    gx = np.tile(cols.astype(float), (1, len(off)))
-    bg = np.percentile(win, 20, axis=1)
+    win = img[rows[:, :, None], cols[:, None, :]].astype(np.float32)
+    if b == 2:
+        w = len(off) // 2
+        win = win.reshape(k, w, 2, w, 2).mean(axis=(2, 4))
+        rows = rows.reshape(k, w, 2).mean(axis=2)
+        cols = cols.reshape(k, w, 2).mean(axis=2)
+        s0 = np.sqrt(np.asarray(s0, float) ** 2 + 0.25)
+    win = win.reshape(k, -1)
+    gy = np.repeat(rows.astype(np.float32), rows.shape[1], axis=1)  # (k, w*w) row coordinate
+    gx = np.tile(cols.astype(np.float32), (1, cols.shape[1]))
+    bg = np.partition(win, win.shape[1] // 5, axis=1)[:, win.shape[1] // 5].astype(float)
     amp = np.maximum(win.max(axis=1) - bg, 1e-6)
     p = np.column_stack([amp, x0.astype(float), y0.astype(float), s0.astype(float), bg])
     lam = np.full(k, 1e-3)
     eye = np.eye(5)
 
-    def model(p):
-        dx = gx - p[:, 1:2]
-        dy = gy - p[:, 2:3]
-        s2 = p[:, 3:4] ** 2
-        e = np.exp(-(dx ** 2 + dy ** 2) / (2 * s2))
-        return e, dx, dy, s2
+    def model(p, g_y, g_x, w):
+        q = p.astype(np.float32)
+        dx = g_x - q[:, 1:2]
+        dy = g_y - q[:, 2:3]
+        s2 = q[:, 3:4] ** 2
+        e = np.exp(-(dx * dx + dy * dy) / (2 * s2))
+        res = w - (q[:, 4:5] + q[:, 0:1] * e)
+        return e, dx, dy, s2, res
 
-    e, dx, dy, s2 = model(p)
-    res = win - (p[:, 4:5] + p[:, 0:1] * e)
-    cost = (res ** 2).sum(axis=1)
+    e, dx, dy, s2, res = model(p, gy, gx, win)
+    cost = np.einsum("ij,ij->i", res, res, dtype=np.float64)
+    active = np.ones(k, bool)
     for _ in range(n_iter):
-        a = p[:, 0:1]
-        jac = np.stack([e, a * e * dx / s2, a * e * dy / s2, a * e * (dx ** 2 + dy ** 2) / (s2 * p[:, 3:4]),
-                        np.ones_like(e)], axis=2)
-        jt = jac.transpose(0, 2, 1)
-        jtj = jt @ jac
-        jtr = (jt @ res[:, :, None])[:, :, 0]
-        damp = jtj + lam[:, None, None] * np.diagonal(jtj, axis1=1, axis2=2)[:, :, None] * eye
+        ia = np.nonzero(active)[0]
+        if ia.size == 0:
+            break
+        pa = p[ia]
+        a = pa[:, 0:1].astype(np.float32)
+        ea, dxa, dya, s2a = e[ia], dx[ia], dy[ia], s2[ia]
+        ae = a * ea / s2a
+        jac = np.stack([ea, ae * dxa, ae * dya, ae * (dxa * dxa + dya * dya) / pa[:, 3:4].astype(np.float32),
+                        np.ones_like(ea)], axis=1)  # (k, 5, n)
+        jtj = (jac @ jac.transpose(0, 2, 1)).astype(np.float64)
+        jtr = (jac @ res[ia][:, :, None])[:, :, 0].astype(np.float64)
+        damp = jtj + lam[ia, None, None] * np.diagonal(jtj, axis1=1, axis2=2)[:, :, None] * eye
         try:
             step = np.linalg.solve(damp, jtr[:, :, None])[:, :, 0]
         except np.linalg.LinAlgError:
             break
-        pn = p + step
+        pn = pa + step
         pn[:, 3] = np.abs(pn[:, 3]) + 1e-6
-        en, dxn, dyn, s2n = model(pn)
-        resn = win - (pn[:, 4:5] + pn[:, 0:1] * en)
-        costn = (resn ** 2).sum(axis=1)
-        better = costn < cost
-        p = np.where(better[:, None], pn, p)
-        e = np.where(better[:, None], en, e)
-        dx = np.where(better[:, None], dxn, dx)
-        dy = np.where(better[:, None], dyn, dy)
-        s2 = np.where(better[:, None], s2n, s2)
-        res = np.where(better[:, None], resn, res)
-        cost = np.where(better, costn, cost)
-        lam = np.where(better, lam * 0.3, lam * 10.0)
-        if np.all(np.abs(step[:, 1:3]) < 2e-3) and better.all():
-            break
+        en, dxn, dyn, s2n, resn = model(pn, gy[ia], gx[ia], win[ia])
+        costn = np.einsum("ij,ij->i", resn, resn, dtype=np.float64)
+        better = costn < cost[ia]
+        ib = ia[better]
+        p[ib], e[ib], dx[ib], dy[ib], s2[ib], res[ib] = (pn[better], en[better], dxn[better], dyn[better],
+                                                         s2n[better], resn[better])
+        cost[ib] = costn[better]
+        lam[ia] = np.where(better, lam[ia] * 0.3, lam[ia] * 10.0)
+        done = better & (np.abs(step[:, 1:3]) < 2e-3).all(axis=1)
+        active[ia[done]] = False
     ok = (np.isfinite(p).all(axis=1) & (p[:, 0] > 0) & (np.abs(p[:, 1] - x0) < np.maximum(s0, 1.0))
           & (np.abs(p[:, 2] - y0) < np.maximum(s0, 1.0)) & (p[:, 3] > 0.4 * s0) & (p[:, 3] < 2.5 * s0))
-    return p[:, 1], p[:, 2], p[:, 3], p[:, 0], p[:, 4], ok
+    s, a = p[:, 3], p[:, 0]
+    if b == 2:  # undo the block mean: variance s² + 1/4, peak A·s²/(s² + 1/4)
+        s_in = np.sqrt(np.maximum(s * s - 0.25, 1e-12))
+        a = a * (s * s) / (s_in * s_in)
+        s = s_in
+    return p[:, 1], p[:, 2], s, a, p[:, 4], ok
+
+
+def _ring_stats(img: np.ndarray, ys: np.ndarray, xs: np.ndarray, radii: np.ndarray):
+    """Local background (median) and its noise (robust SD) in the annulus ``2r ≤ d ≤ 3r`` around
+    each blob, all blobs of similar size at once (a row-wise sort of the masked windows)."""
+    ny, nx = img.shape
+    n = len(ys)
+    bgs, noises, counts = np.full(n, np.nan), np.full(n, np.nan), np.zeros(n, int)
+    sizes = np.array([4, 5, 6, 8, 10, 12, 14, 17, 20, 24, 28, 33, 39, 46, 54, 64, 76, 91, 108, 128])
+    want = np.ceil(3 * radii).astype(int) + 1
+    halves = np.where(want <= sizes[-1], sizes[np.searchsorted(sizes, np.minimum(want, sizes[-1]))], want)
+    for h in np.unique(halves):
+        idx = np.nonzero(halves == h)[0]
+        off = np.arange(-h, h + 1)
+        rows = np.floor(ys[idx]).astype(int)[:, None] + off[None, :]
+        cols = np.floor(xs[idx]).astype(int)[:, None] + off[None, :]
+        vr = (rows >= 0) & (rows < ny)
+        vc = (cols >= 0) & (cols < nx)
+        win = img[np.clip(rows, 0, ny - 1)[:, :, None], np.clip(cols, 0, nx - 1)[:, None, :]]
+        d2 = (rows[:, :, None] - ys[idx, None, None]) ** 2 + (cols[:, None, :] - xs[idx, None, None]) ** 2
+        r2 = radii[idx, None, None] ** 2
+        mask = (d2 >= 4 * r2) & (d2 <= 9 * r2) & vr[:, :, None] & vc[:, None, :]
+        m = mask.reshape(len(idx), -1)
+        cnt = m.sum(axis=1)
+        w = np.where(m, win.reshape(len(idx), -1), np.float32(np.inf))
+        srt = np.sort(w, axis=1)
+        lo, hi = np.maximum(cnt - 1, 0) // 2, cnt // 2
+        rr = np.arange(len(idx))
+        med = 0.5 * (srt[rr, lo].astype(float) + srt[rr, hi])
+        dev = np.sort(np.where(m, np.abs(w - med[:, None].astype(np.float32)), np.float32(np.inf)), axis=1)
+        bgs[idx] = med
+        noises[idx] = 1.4826 * 0.5 * (dev[rr, lo].astype(float) + dev[rr, hi])
+        counts[idx] = cnt
+    return bgs, noises, counts
 
 
 def apex_region(view: np.ndarray, smooth_px: float = 3.0, close_px: float = 0.0) -> tuple[float, float, float]:
@@ -303,57 +399,83 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
     """
     img = np.asarray(image, dtype=np.float32)
     sigmas = np.atleast_1d(np.asarray(sigmas, dtype=float))
-    ny, nx = img.shape
-    if img.size == 0 or not np.isfinite(img).all():
+    if img.ndim != 2 or img.size == 0 or not np.isfinite(img).all():
         return _empty()
-    resps = pyramid_log(img, sigmas)
+    if region is not None and region_factor is not None:
+        # only the apex region (and a margin that holds the photometry annulus) is searched
+        rx, ry, rr = (float(v) for v in region)
+        reach = region_factor * rr + 4.5 * float(sigmas.max()) + 3.0
+        y0, x0 = max(0, int(math.floor(ry - reach))), max(0, int(math.floor(rx - reach)))
+        y1, x1 = min(img.shape[0], int(math.ceil(ry + reach)) + 1), min(img.shape[1], int(math.ceil(rx + reach)) + 1)
+        if y1 - y0 < img.shape[0] or x1 - x0 < img.shape[1]:
+            if y1 - y0 < 3 or x1 - x0 < 3:
+                return _empty()
+            df = detect_blobs(img[y0:y1, x0:x1], sigmas, min_snr=min_snr, border_px=border_px, overlap=overlap,
+                              threshold_sd=threshold_sd, region=(rx - x0, ry - y0, rr),
+                              region_factor=region_factor, fit=fit)
+            if df.empty:
+                return df
+            df["x_px"] += x0
+            df["y_px"] += y0
+            return df
+    ny, nx = img.shape
+    f, cube = log_stack(img, sigmas)
     nk = len(sigmas)
-    cand_k, cand_y, cand_x, cand_v = [], [], [], []
+    cand_k, cand_y, cand_x, cand_v, cand_lo, cand_hi = [], [], [], [], [], []
     # responses below 1 % of the frame's strongest are never blobs (guards noise-free images)
-    floor = 0.01 * max(float(r.max()) for _, r in resps)
-    for k, (f, r) in enumerate(resps):
-        sub = r[:: max(1, r.shape[0] // 128), :: max(1, r.shape[1] // 128)]
-        thr = max(threshold_sd * _robust_sd(sub), floor)
-        peaks = (r == ndi.maximum_filter(r, size=3, mode="nearest")) & (r > max(thr, 0.0))
-        ys, xs = np.nonzero(peaks)
+    floor = 0.01 * float(cube.max())
+    step_y, step_x = max(1, cube.shape[1] // 64), max(1, cube.shape[2] // 64)
+    for k in range(nk):
+        r = cube[k]
+        thr = max(threshold_sd * _robust_sd(r[::step_y, ::step_x]), floor, 0.0)
+        ys, xs = _local_maxima(r, thr)
         if ys.size == 0:
             continue
+        v = r[ys, xs]
+        # maximum across the neighbouring scales (same grid point)
+        lo = cube[k - 1][ys, xs] if k > 0 else np.full(v.shape, -np.inf, np.float32)
+        hi = cube[k + 1][ys, xs] if k < nk - 1 else np.full(v.shape, -np.inf, np.float32)
+        keep = (v >= lo) & (v >= hi)
+        ys, xs, v, lo, hi = ys[keep], xs[keep], v[keep], lo[keep], hi[keep]
         # subpixel on the coarse grid
         yi = np.clip(ys, 1, r.shape[0] - 2)
         xi = np.clip(xs, 1, r.shape[1] - 2)
-        dy = _parabola_offset(r[yi - 1, xs], r[ys, xs], r[yi + 1, xs]) * ((ys > 0) & (ys < r.shape[0] - 1))
-        dx = _parabola_offset(r[ys, xi - 1], r[ys, xs], r[ys, xi + 1]) * ((xs > 0) & (xs < r.shape[1] - 1))
+        dy = _parabola_offset(r[yi - 1, xs], v, r[yi + 1, xs]) * ((ys > 0) & (ys < r.shape[0] - 1))
+        dx = _parabola_offset(r[ys, xi - 1], v, r[ys, xi + 1]) * ((xs > 0) & (xs < r.shape[1] - 1))
         fy, fx = (ys + dy) * f, (xs + dx) * f
         inside = ((fy >= border_px) & (fy <= ny - 1 - border_px) & (fx >= border_px) & (fx <= nx - 1 - border_px))
-        fy, fx, v = fy[inside], fx[inside], r[ys, xs][inside]
-        # maximum across the neighbouring scales
-        keep = np.ones(len(v), bool)
-        for kk in (k - 1, k + 1):
-            if 0 <= kk < nk:
-                f2, r2 = resps[kk]
-                keep &= v >= _sample(r2, f2, fy, fx)
-        cand_k.append(np.full(keep.sum(), k))
-        cand_y.append(fy[keep])
-        cand_x.append(fx[keep])
-        cand_v.append(v[keep])
+        cand_k.append(np.full(int(inside.sum()), k))
+        cand_y.append(fy[inside])
+        cand_x.append(fx[inside])
+        cand_v.append(v[inside])
+        cand_lo.append(lo[inside])
+        cand_hi.append(hi[inside])
     if not cand_k or sum(len(c) for c in cand_k) == 0:
         return _empty()
     ks = np.concatenate(cand_k)
     ys = np.concatenate(cand_y)
     xs = np.concatenate(cand_x)
-    resp = np.concatenate(cand_v)
+    resp = np.concatenate(cand_v).astype(float)
     # refine the scale: parabola in log σ through the neighbouring scales' responses
     logs = np.log(sigmas)
     sig = sigmas[ks].copy()
     if nk >= 3:
         inner = (ks > 0) & (ks < nk - 1)
         if inner.any():
-            ii = np.nonzero(inner)[0]
-            lo = np.array([_sample(resps[k - 1][1], resps[k - 1][0], ys[i:i + 1], xs[i:i + 1])[0] for i, k in zip(ii, ks[ii])])
-            hi = np.array([_sample(resps[k + 1][1], resps[k + 1][0], ys[i:i + 1], xs[i:i + 1])[0] for i, k in zip(ii, ks[ii])])
-            off = _parabola_offset(lo, resp[ii], hi)
-            step = logs[1] - logs[0]
-            sig[ii] = np.exp(logs[ks[ii]] + off * step)
+            lo = np.concatenate(cand_lo).astype(float)[inner]
+            hi = np.concatenate(cand_hi).astype(float)[inner]
+            off = _parabola_offset(lo, resp[inner], hi)
+            sig[inner] = np.exp(logs[ks[inner]] + off * (logs[1] - logs[0]))
+    # a first, cheap peak estimate: at the matching scale the normalised LoG response at the
+    # centre of a Gaussian blob is half its amplitude; with the frame's pixel noise (from
+    # neighbour differences) it drops clear non-blobs before the per-blob photometry and fit
+    # (a test on the response alone: applied before the suppression it drops the same blobs)
+    pix_noise = _robust_sd((img[1::2, :] [: img.shape[0] // 2] - img[0::2, :][: img.shape[0] // 2]).ravel()[::7]) / math.sqrt(2.0)
+    if pix_noise > 0:
+        pre = 2.0 * resp / pix_noise >= 0.5 * min_snr
+        ks, ys, xs, resp, sig = ks[pre], ys[pre], xs[pre], resp[pre], sig[pre]
+        if len(ys) == 0:
+            return _empty()
     # non-maximum suppression in space (strongest first)
     order = np.argsort(-resp, kind="stable")
     ks, ys, xs, resp, sig = ks[order], ys[order], xs[order], resp[order], sig[order]
@@ -379,20 +501,11 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
         ys, xs, resp, sig, radii = ys[inside], xs[inside], resp[inside], sig[inside], radii[inside]
     if len(ys) == 0:
         return _empty()
-    # a first, cheap peak estimate: at the matching scale the normalised LoG response at the
-    # centre of a Gaussian blob is half its amplitude; with the frame's pixel noise (from
-    # neighbour differences) it drops clear non-blobs before the per-blob photometry and fit
-    pix_noise = _robust_sd((img[1::2, :] [: img.shape[0] // 2] - img[0::2, :][: img.shape[0] // 2]).ravel()[::7]) / math.sqrt(2.0)
-    if pix_noise > 0:
-        pre = 2.0 * resp / pix_noise >= 0.5 * min_snr
-        ys, xs, resp, sig, radii = ys[pre], xs[pre], resp[pre], sig[pre], radii[pre]
-        if len(ys) == 0:
-            return _empty()
     # photometry at the LoG position: local background (annulus 2r–3r), its noise, and the
     # peak estimate; clear non-blobs are dropped before the (costlier) fit
     n = len(ys)
-    bgs, noises, peaks = np.empty(n), np.empty(n), np.empty(n)
-    for i in range(n):
+    bgs, noises, counts = _ring_stats(img, ys, xs, radii)
+    for i in np.nonzero(counts < 8)[0]:  # tiny blobs: the whole window outside r instead
         r = float(radii[i])
         y, x = float(ys[i]), float(xs[i])
         lo_y, hi_y = max(0, int(y - 3 * r - 1)), min(ny, int(y + 3 * r + 2))
@@ -404,9 +517,9 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
         if ring.size < 8:
             ring = sub[d > r]
         bgs[i] = float(np.median(ring)) if ring.size else float(np.median(img))
-        noise = _robust_sd(ring) if ring.size >= 8 else _robust_sd(img)
-        noises[i] = max(noise, 1e-6 * max(abs(bgs[i]), 1.0), 1e-12)
-        peaks[i] = 2.0 * float(resp[i])
+        noises[i] = _robust_sd(ring) if ring.size >= 8 else _robust_sd(img)
+    noises = np.maximum(np.maximum(noises, 1e-6 * np.maximum(np.abs(bgs), 1.0)), 1e-12)
+    peaks = 2.0 * resp.astype(float)
     pre = peaks / noises >= 0.5 * min_snr
     ys, xs, resp, sig, radii = ys[pre], xs[pre], resp[pre], sig[pre], radii[pre]
     bgs, noises, peaks = bgs[pre], noises[pre], peaks[pre]
@@ -423,7 +536,8 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
         halves = np.where(want <= sizes[-1], sizes[np.searchsorted(sizes, np.minimum(want, sizes[-1]))], want).astype(int)
         for h in np.unique(halves):
             idx = np.nonzero(halves == h)[0]
-            fx_, fy_, fs_, fa_, fb_, ok = _gauss_fit(img, ys[idx], xs[idx], sig[idx], int(h))
+            fx_, fy_, fs_, fa_, fb_, ok = _gauss_fit(img, ys[idx], xs[idx], sig[idx], int(h),
+                                                     bin_px=2 if h >= BIN_FIT_HALF else 1)
             ok &= (fx_ >= 0) & (fx_ <= nx - 1) & (fy_ >= 0) & (fy_ <= ny - 1)
             yr[idx[ok]], xr[idx[ok]] = fy_[ok], fx_[ok]
             # the fitted amplitude is the peak above the fitted local background
@@ -432,20 +546,22 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
     snr = peaks / noises
     # a candidate that no Gaussian blob fits (an edge, a ridge) is not a primordium
     keep = (snr >= min_snr) & fitted
-    rows = []
-    for i in np.nonzero(keep)[0]:
+    sel = np.nonzero(keep)[0]
+    if sel.size == 0:
+        return _empty()
+    integ = np.empty(sel.size)
+    for n_, i in enumerate(sel):  # integrated intensity above the background within r
         r = float(radii[i])
         y, x = float(yr[i]), float(xr[i])
         lo_y, hi_y = max(0, int(y - r - 1)), min(ny, int(y + r + 2))
         lo_x, hi_x = max(0, int(x - r - 1)), min(nx, int(x + r + 2))
         gy, gx = np.ogrid[lo_y:hi_y, lo_x:hi_x]
-        inner = img[lo_y:hi_y, lo_x:hi_x][np.hypot(gy - y, gx - x) <= r]
-        rows.append((x, y, r, float(sig[i]), float(peaks[i]), float(bgs[i]), float(noises[i]), float(snr[i]),
-                     float(np.clip(inner - bgs[i], 0, None).sum()), float(resp[i])))
-    df = pd.DataFrame(rows, columns=DETECTION_COLUMNS)
-    if df.empty:
-        return _empty()
-    return df.sort_values(["y_px", "x_px"], kind="stable").reset_index(drop=True)
+        inner = img[lo_y:hi_y, lo_x:hi_x][(gy - y) ** 2 + (gx - x) ** 2 <= r * r]
+        integ[n_] = float(np.clip(inner - bgs[i], 0, None).sum())
+    order = np.lexsort((xr[sel], yr[sel]))  # by y, then x
+    sel, integ = sel[order], integ[order]
+    cols = [xr[sel], yr[sel], radii[sel], sig[sel], peaks[sel], bgs[sel], noises[sel], snr[sel], integ, resp[sel]]
+    return pd.DataFrame({c: np.asarray(v, dtype=float) for c, v in zip(DETECTION_COLUMNS, cols)})
 
 
 DETECTION_COLUMNS_3D = ["x_px", "y_px", "z_px", "radius_px", "sigma_px", "intensity", "background",

@@ -125,11 +125,31 @@ def _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega):
     return a
 
 
-def _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, gamma, omega):
-    """Least squares of the centres and offsets for a fixed λ = γ + iω."""
+#: Scatter of the second difference of the apex centre between frames (µm) that the motion fit
+#: allows for: the centre left by registration moves smoothly, and a frame with one or two
+#: primordia cannot place its centre alone (common practice, no source).
+CENTRE_STEP_SD_UM = 0.5
+
+
+def _smoothing_rows(n_frames: int, n: int, weight: float) -> np.ndarray:
+    """Rows ``weight·(c_{f−1} − 2c_f + c_{f+1})`` of the centre smoothness prior."""
+    m = max(n_frames - 2, 0)
+    s = np.zeros((m, n_frames + n), complex)
+    for i in range(m):
+        s[i, i:i + 3] = (weight, -2.0 * weight, weight)
+    return s
+
+
+def _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, gamma, omega, smooth: float = 0.0):
+    """Least squares of the centres and offsets for a fixed λ = γ + iω (``smooth``: weight of
+    the centre smoothness prior, in units of the position error)."""
     a = _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega)
-    coef, *_ = np.linalg.lstsq(a, z, rcond=None)
-    res = z - a @ coef
+    zz = z
+    if smooth > 0 and n_frames > 2:
+        a = np.vstack([a, _smoothing_rows(n_frames, n, smooth)])
+        zz = np.concatenate([z, np.zeros(n_frames - 2, complex)])
+    coef, *_ = np.linalg.lstsq(a, zz, rcond=None)
+    res = zz - a @ coef
     return coef, float(np.sum(np.abs(res) ** 2))
 
 
@@ -229,7 +249,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         def sse(p):
             if abs(p[0]) > max_rate_per_h or abs(p[1]) > max_rate_per_h:
                 return 1e300
-            return _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, p[0], p[1])[1]
+            return _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, p[0], p[1], smooth)[1]
 
         best = None
         for growth_per_frame in (1.01, 1.04, 1.10):
@@ -239,13 +259,15 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                 best = r
         return float(best.x[0]), float(best.x[1])
 
+    # the centre smoothness prior, weighted against a typical detection error of 0.1 µm
+    smooth = 0.1 / CENTRE_STEP_SD_UM
     # a robust start: detections far off the model are left out and the fit is repeated
     keep = np.ones(len(t_all), bool)
     for it in range(5):
         codes, uniq = pd.factorize(tid_all[keep], sort=True)
         tid, t, z, fidx, n = codes, t_all[keep], z_all[keep], f_all[keep], len(uniq)
         gamma, omega = fit_lambda(tid, t, z, fidx, n)
-        coef, s = _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, gamma, omega)
+        coef, s = _profiled_fit(t, z, fidx, tid, n_f, n, t_ref, gamma, omega, smooth)
         pos = np.searchsorted(uniq, tid_all)
         known = (pos < n) & (uniq[np.minimum(pos, n - 1)] == tid_all)
         zm = coef[f_all] + np.exp((gamma + 1j * omega) * (t_all - t_ref)) \
@@ -275,11 +297,25 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
             # the common vector b that brings the motion centres closest to the hint
             e = np.exp((gamma + 1j * omega) * (frame_time - t_ref))
             b = complex(np.sum(np.conj(e[ok]) * (hz[ok] - model.frame_centres[ok])) / np.sum(np.abs(e[ok]) ** 2))
+            a_all = np.array(list(model.offsets.values()))
+            if abs(b - a_all.mean()) > np.max(np.abs(a_all - a_all.mean())):
+                ok[:] = False  # a hint outside the primordia cannot be the centre: not used
+        if ok.any():
             hinted = MotionModel(gamma, omega, frame_time, model.frame_centres + e * b, t_ref, rms_um=rms,
                                  n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()})
             model = hinted
     if not rim:
         return model
+    # the common vector b, first from the regularity of the pattern: successive primordia turn
+    # by a common angle about the true centre only (an offset δ at radius r turns an azimuth by
+    # about (δ/r)·sin(θ − ψ), Okabe, arXiv:1212.3377). This is what fixes the centre across the
+    # line of a distichous pattern, where the rim (births at two opposite azimuths) cannot.
+    b = _regular_turn_shift(np.array(list(model.offsets.values())), hinted is not None)
+    if b is not None:
+        e = np.exp((gamma + 1j * omega) * (frame_time - t_ref))
+        model = MotionModel(gamma, omega, frame_time, model.frame_centres + e * b, t_ref, rms_um=rms,
+                            n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()})
+        hinted = model
 
     # rim constraint from the primordia seen appearing
     first = tracks.sort_values(["track_id", "frame"], kind="stable").drop_duplicates("track_id")
@@ -287,6 +323,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     sigma_m = max(rms, 0.05)
     inside = _inside_hull_of_frame(tracks, first) if hinted is None else None
     ff_idx = np.searchsorted(frame_list, first["frame"].to_numpy())
+    n_seen = tracks.groupby("track_id").size().reindex(first["track_id"]).to_numpy()
     zf = first["x_um"].to_numpy(float) + 1j * first["y_um"].to_numpy(float)
     for it in range(4):
         cen = model.centre(tracks["time_h"].to_numpy(float))
@@ -298,6 +335,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         # starting after the first frame inside the other primordia of its frame (tracks
         # entering the field of view start on the outside)
         new = (first["frame"].to_numpy() > f0) & (inside if (it == 0 and hinted is None) else near_rim)
+        new &= n_seen > 1  # a blob seen once is too often noise to pin the rim
         if new.sum() < 3:
             return model
         zn, fn = zf[new], ff_idx[new]
@@ -305,18 +343,26 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         sigma_r = max(float(np.median(rf[new])) * model.gamma_per_h * dt / math.sqrt(12.0), sigma_m)
         a0 = np.array([model.offsets[k] for k in ids])
         c0 = model.frame_centres
+        # successive primordia (older = farther from the centre) and their common turn α
+        pa, pb = _successive_pairs(a0)
+        turn0 = _turns(a0, pa, pb)
+        alpha0 = float(np.angle(np.mean(turn0))) if len(pa) else 0.0
         p0 = np.concatenate([[model.gamma_per_h, model.omega_rad_per_h, float(np.median(rf[new]))],
                              np.column_stack([c0.real, c0.imag]).ravel(),
-                             np.column_stack([a0.real, a0.imag]).ravel()])
+                             np.column_stack([a0.real, a0.imag]).ravel(), [alpha0]])
         k0 = 3 + 2 * n_f
+        k1 = k0 + 2 * n
 
         def resid(p):
             c = p[3:k0:2] + 1j * p[4:k0:2]
-            a = p[k0::2] + 1j * p[k0 + 1::2]
+            a = p[k0:k1:2] + 1j * p[k0 + 1:k1:2]
             zm = c[fidx] + np.exp((p[0] + 1j * p[1]) * (t - t_ref)) * a[tid]
             rm = (z - zm) / sigma_m
             rr = (np.abs(zn - c[fn]) - p[2]) / sigma_r
-            return np.concatenate([rm.real, rm.imag, rr])
+            # chord between each turn and the common one: smooth, bounded for outliers
+            rt = (_turns(a, pa, pb) - np.exp(1j * p[k1])) / TURN_SD_RAD
+            rs = (c[:-2] - 2.0 * c[1:-1] + c[2:]) / CENTRE_STEP_SD_UM
+            return np.concatenate([rm.real, rm.imag, rr, rt.real, rt.imag, rs.real, rs.imag])
 
         sol = least_squares(resid, p0, loss="soft_l1", f_scale=3.0, x_scale="jac")
         p = sol.x
@@ -342,6 +388,70 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                             centre_sd_um=csd, n_tracks=n, n_new=int(new.sum()),
                             offsets={k: complex(p[k0 + 2 * i], p[k0 + 1 + 2 * i]) for i, k in enumerate(ids)})
     return model
+
+
+#: Scatter of the turn between successive primordia about the common divergence angle that
+#: the centre fit allows for (rad; common practice, no source: about 10°).
+TURN_SD_RAD = 0.18
+
+
+def _successive_pairs(offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Indices of successive primordia, ranked by distance from the centre (older = farther,
+    since all are born on one rim and drift outward together). Pairs with nearly the same
+    distance (co-initiated organs, or two pieces of one track) are left out: their order is
+    not known."""
+    r = np.abs(offsets)
+    order = np.argsort(-r, kind="stable")
+    if len(order) < 2:
+        return np.zeros(0, int), np.zeros(0, int)
+    dl = -np.diff(np.log(np.maximum(r[order], 1e-9)))
+    ok = dl > 0.3 * float(np.median(dl)) if np.median(dl) > 0 else dl > 0
+    return order[:-1][ok], order[1:][ok]
+
+
+def _turns(offsets: np.ndarray, pa: np.ndarray, pb: np.ndarray) -> np.ndarray:
+    """Unit complex turn from primordium ``pa`` to ``pb`` about the centre."""
+    u = offsets[pb] * np.conj(offsets[pa])
+    return u / np.maximum(np.abs(u), 1e-12)
+
+
+def _regular_turn_shift(offsets: np.ndarray, near_start: bool) -> complex | None:
+    """The shift b of the centre (offsets become ``offsets − b``) about which successive
+    primordia turn most regularly (chordal least squares on the turns, common angle fitted).
+
+    The search starts at the present centre when it is already a fair estimate
+    (``near_start``), else at the centroid of the offsets (on the line of a distichous
+    pattern); it is bounded to half the distance of the nearest primordium, so that the
+    degenerate solution far away (every turn 0) cannot be reached. None with fewer than three
+    pairs or when the fit does not converge inside the bound."""
+    from scipy.optimize import least_squares
+
+    a = np.asarray(offsets, complex)
+    if len(a) < 4:
+        return None
+    start = 0j if near_start else complex(np.mean(a))
+    bound = 0.5 * float(np.min(np.abs(a - start)))
+    pa, pb = _successive_pairs(a - start)
+    if len(pa) < 3 or not bound > 0:
+        return None
+
+    def resid(p):
+        b = complex(p[0], p[1])
+        d = _turns(a - b, pa, pb) - np.exp(1j * p[2])
+        return np.concatenate([d.real, d.imag])
+
+    alpha0 = float(np.angle(np.mean(_turns(a - start, pa, pb))))
+    lo = [start.real - bound, start.imag - bound, -np.inf]
+    hi = [start.real + bound, start.imag + bound, np.inf]
+    try:
+        sol = least_squares(resid, [start.real, start.imag, alpha0], bounds=(lo, hi), loss="soft_l1",
+                            f_scale=2 * math.sin(TURN_SD_RAD))
+    except ValueError:
+        return None
+    b = complex(sol.x[0], sol.x[1])
+    if abs(b - start) >= 0.99 * bound:
+        return None
+    return b
 
 
 def _inside_hull_of_frame(tracks: pd.DataFrame, first: pd.DataFrame) -> np.ndarray:
@@ -575,11 +685,54 @@ def link_tracks(detections: pd.DataFrame, search_range_um: float, memory: int = 
     info["n_jumps_split"] = n_cut
     split = tracks.pop("_split").to_numpy(bool) if "_split" in tracks else None
     tracks = track_quality(tracks, model, min_track_frames, split)
+    if model is not None:
+        tracks = flag_unconfirmed(tracks, model)
     info["n_tracks"] = int(tracks["track_id"].nunique()) if not tracks.empty else 0
     if model is not None:
         info["motion"] = model.to_dict()
     info["model"] = model
     return tracks, info
+
+
+def flag_unconfirmed(tracks: pd.DataFrame, model: MotionModel) -> pd.DataFrame:
+    """Add the flag ``unconfirmed`` to one-detection tracks at the ends of the record that the
+    motion cannot explain.
+
+    A primordium seen only in the first frame must have left the region where primordia are
+    detected by the second: moved along the motion model it must lie farther from the centre
+    than every primordium seen there. One seen only in the last frame must have just been born:
+    it must lie on the rim (within one interval's growth of the rim radius, or of the nearest
+    primordium of that frame when no rim was fitted). Anything else is most likely a blob of
+    noise; it stays in the table, flagged, and is not taken for a primordium.
+    """
+    if tracks.empty or "track_flags" not in tracks:
+        return tracks
+    out = tracks.copy()
+    frames = np.sort(out["frame"].unique())
+    if len(frames) < 2:
+        return out
+    ftime = out.groupby("frame")["time_h"].first()
+    n = out.groupby("track_id")["frame"].transform("size").to_numpy()
+    z = out["x_um"].to_numpy(float) + 1j * out["y_um"].to_numpy(float)
+    t = out["time_h"].to_numpy(float)
+    r = np.abs(z - model.centre(t))
+    f = out["frame"].to_numpy()
+    bad = np.zeros(len(out), bool)
+    # first frame: radius of the blob carried to the second frame vs the farthest there
+    t0, t1 = float(ftime[frames[0]]), float(ftime[frames[1]])
+    r_far = float(np.max(r[f == frames[1]])) if (f == frames[1]).any() else math.inf
+    grow = math.exp(model.gamma_per_h * (t1 - t0))
+    bad |= (n == 1) & (f == frames[0]) & (r * grow < r_far)
+    # last frame: a newborn primordium sits on the rim
+    tl, tp = float(ftime[frames[-1]]), float(ftime[frames[-2]])
+    last = f == frames[-1]
+    rim = model.rim_radius_um if np.isfinite(model.rim_radius_um) else float(np.min(r[last]))
+    bad |= (n == 1) & last & (r > rim * math.exp(model.gamma_per_h * (tl - tp)) * 1.25)
+    if bad.any():
+        flags = out["track_flags"].astype(str).to_numpy().copy()
+        flags[bad] = [";".join([x for x in fl.split(";") if x] + ["unconfirmed"]) for fl in flags[bad]]
+        out["track_flags"] = pd.Series(flags, index=out.index, dtype=object)
+    return out
 
 
 def renumber_tracks(df: pd.DataFrame) -> pd.DataFrame:

@@ -203,6 +203,20 @@ def _input_checksums(stack: Stack) -> dict[str, str]:
     return {str(q.relative_to(p)): sha256_file(q) for q in files}
 
 
+def _native_frame(stack: Stack, t: int, channel=None) -> np.ndarray:
+    """One channel of timepoint ``t`` in the stack's own dtype (as :meth:`Stack.frame`, which
+    converts to float32, for integer data; float data goes through :meth:`Stack.frame`, which
+    also rejects NaN and infinite values)."""
+    if np.dtype(stack.data.dtype).kind == "f":
+        return stack.frame(t, channel)
+    arr = stack.timepoint(t)
+    rest = stack.axes.replace("T", "")
+    if "C" in rest:
+        return np.take(arr, stack.channel_index(channel), axis=rest.index("C"))
+    stack.channel_index(channel)  # a bad channel name is a clear error, as in Stack.frame
+    return arr
+
+
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 on_frame: Callable[[int, np.ndarray], None] | None = None,
                 extra: dict | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -221,9 +235,9 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     views), so that no more than one frame is held in memory. When
     ``extra`` is a dict it receives the ``registration`` table.
     """
-    from .apex import _tilt_vector, fit_dome
+    from .apex import _tilt_vector, dome_is_plausible, fit_dome
     from .detect import apex_region, detect_blobs_3d
-    from .projection import shell_projection, surface_height
+    from .projection import max_projection, shell_projection, surface_height
     from .register import Registrar
 
     px = stack.pixel_size_um[0]
@@ -246,19 +260,23 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
     dome_prev = None
     for t in _progress(range(stack.n_frames), stack.n_frames, "frames", progress):
-        vol = stack.frame(t, s.channel)
-        if vol.size and float(vol.min()) == float(vol.max()):
+        # the volume stays in the stack's dtype: projections and the height map's binning
+        # read it as it is, nothing converts it whole to float
+        vol = _native_frame(stack, t, s.channel)
+        mip = max_projection(vol)  # float32
+        is_blank = bool(vol.size) and float(mip.min()) == float(mip.max()) and float(vol.min()) == float(mip.max())
+        if is_blank:
             blank.append(t)
         hm = None
-        if vol.ndim == 3 and not (vol.size and float(vol.min()) == float(vol.max())):
-            surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel)
+        if vol.ndim == 3 and not is_blank:
+            surf = vol if s.membrane_channel is None else _native_frame(stack, t, s.membrane_channel)
             hm = surface_height(surf, dz, px, up=side)
             if isinstance(side, str) and side == "auto":
                 side = hm.up  # decided once, from the first frame with signal
         if s.projection == "surface" and hm is not None:
             view = shell_projection(vol, hm, dz, s.shell_depth_um)
         else:
-            view = top_view(vol, "max")
+            view = mip
         rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
         if s.detect_3d and vol.ndim == 3:
             blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
@@ -281,7 +299,9 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 far = dist > 1.5 * blobs["radius_px"].to_numpy(float)[idx]
                 hx, hy, hz = hx[far], hy[far], hz[far]
             dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=dome_prev, robust_um=max(0.5, 0.25 * dz))
-            dome_prev = dome
+            if not dome_is_plausible(dome, (nx * px, ny * px)):
+                dome = None  # no summit found (a plane, or a summit outside the field)
+            dome_prev = dome if dome is not None else dome_prev
             if "z_px" in det.columns:
                 det["z_um"] = det.pop("z_px").to_numpy(float) * dz
             else:

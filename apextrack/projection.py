@@ -86,14 +86,32 @@ class HeightMap:
 
 
 def _bin(volume: np.ndarray, b: int) -> np.ndarray:
+    """Mean over ``b × b`` lateral blocks, float32, from a volume of any real dtype.
+
+    Slice by slice (a slice stays in cache): rows are summed first, then columns on the
+    ``b``-times smaller result, in an exact integer accumulator for 8- and 16-bit data (float32
+    otherwise); the volume itself is never converted whole.
+    """
     nz, ny, nx = volume.shape
     my, mx = (ny // b) * b, (nx // b) * b
     v = volume[:, :my, :mx]
-    if b > 1:
-        # one axis at a time (much faster than a reduction over two strided axes)
-        v = v.reshape(nz, my, mx // b, b).sum(axis=3, dtype=np.float32)
-        v = v.reshape(nz, my // b, b, mx // b).sum(axis=2, dtype=np.float32) / np.float32(b * b)
-    return v
+    if b == 1:
+        return np.asarray(v, np.float32)
+    kind, size = v.dtype.kind, v.dtype.itemsize
+    acc_t = np.uint32 if (kind in "ub" and size <= 2) else np.int32 if (kind == "i" and size <= 2) else np.float32
+    out = np.empty((nz, my // b, mx // b), np.float32)
+    acc = np.empty((my // b, mx), acc_t)
+    for z in range(nz):
+        s = v[z]
+        np.add(s[0::b], s[1::b], out=acc, dtype=acc_t)
+        for i in range(2, b):
+            np.add(acc, s[i::b], out=acc, dtype=acc_t)
+        cols = acc[:, 0::b] + acc[:, 1::b]
+        for i in range(2, b):
+            cols += acc[:, i::b]
+        out[z] = cols
+    out *= np.float32(1.0 / (b * b))
+    return out
 
 
 def dome_side(binned: np.ndarray) -> int:
@@ -129,6 +147,7 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     Parameters
     ----------
     volume : (Z, Y, X) array
+        Any real dtype; it is binned laterally as read, never converted to float whole.
     z_step_um, pixel_size_um : float
     cell_um : float
         Lateral size of the coarse cells (µm); the surface is assumed smooth at that scale.
@@ -152,7 +171,7 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     >>> round(float(np.nanmean(hm.z_um)), 2)
     11.0
     """
-    vol = np.asarray(volume, np.float32)
+    vol = np.asarray(volume)
     if vol.ndim != 3:
         raise ValueError(f"expected a (Z, Y, X) volume, got shape {vol.shape}")
     nz, ny, nx = vol.shape
@@ -169,7 +188,7 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     else:
         raise ValueError(f"up must be 'auto', '+z' or '-z', not {up!r}")
     p = v if side == 1 else v[::-1]
-    sample = p.ravel()[:: max(1, p.size // 200000)]
+    sample = p.ravel()[:: max(1, p.size // 65536)]
     bg = float(np.percentile(sample, 5))
     top = p.max(axis=0)
     noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) + 1e-9
@@ -213,24 +232,39 @@ def shell_projection(volume: np.ndarray, height: HeightMap, z_step_um: float, sh
     """Maximum of the signal between the dome surface and ``shell_depth_um`` below it.
 
     Columns without a surface fall back to the maximum projection. Half a z step above the
-    surface is included, so the surface slice itself always counts.
+    surface is included, so the surface slice itself always counts. The volume may have any
+    real dtype: the maximum is taken slice by slice in that dtype (only the slices the shell
+    reaches are visited) and the result is float32.
     """
-    vol = np.asarray(volume, np.float32)
+    vol = np.asarray(volume)
     nz = vol.shape[0]
     h = height.full() / z_step_um  # in slices
-    zc = np.arange(nz, dtype=np.float32)[:, None, None]
     depth = shell_depth_um / z_step_um
     margin = 0.5
     if height.up == 1:
-        inside = (zc >= h[None] - depth - margin) & (zc <= h[None] + margin)
+        lo, hi = h - depth - margin, h + margin
     else:
-        inside = (zc <= h[None] + depth + margin) & (zc >= h[None] - margin)
+        lo, hi = h - margin, h + depth + margin
     none = ~np.isfinite(h)
-    proj = np.where(inside, vol, -np.inf).max(axis=0)
-    empty = none | ~np.isfinite(proj)
+    if none.all():
+        return max_projection(vol)
+    # slices z with lo ≤ z ≤ hi, per column; columns without a surface take no slice here
+    first = np.where(none, nz, np.ceil(np.where(none, 0, lo))).clip(0, nz).astype(int)
+    last = np.where(none, -1, np.floor(np.where(none, 0, hi))).clip(-1, nz - 1).astype(int)
+    fill = np.finfo(vol.dtype).min if vol.dtype.kind == "f" else np.iinfo(vol.dtype).min
+    proj = np.full(vol.shape[1:], fill, dtype=vol.dtype)
+    taken = np.zeros(vol.shape[1:], bool)
+    z0 = int(first[~none].min()) if (~none).any() else nz
+    z1 = int(last[~none].max()) if (~none).any() else -1
+    for z in range(max(z0, 0), min(z1, nz - 1) + 1):
+        sel = (first <= z) & (z <= last)
+        np.maximum(proj, vol[z], out=proj, where=sel)
+        taken |= sel
+    proj = proj.astype(np.float32)
+    empty = ~taken
     if empty.any():
-        proj = np.where(empty, vol.max(axis=0), proj)
-    return proj.astype(np.float32)
+        proj[empty] = max_projection(vol)[empty]
+    return proj
 
 
 def surface_projection(volume: np.ndarray, z_step_um: float = 1.0, pixel_size_um: float = 1.0,

@@ -17,8 +17,10 @@ Estimation (streaming: only the previous frame's Fourier transform and detection
    outward homothetically); the rigid shift is recovered as
    ``shift = T − (I − R)·f − (1 − s)·R·c``.
    When fewer than three primordia can be matched, the phase-correlation shift is used alone
-   (no rotation) and the row says so; a frame with fewer than three detections is left
-   unregistered and the next frame is registered to the last good one.
+   (no rotation) if it explains the detections better than no shift at all (few primordia of
+   an expanding pattern can make the correlation align a primordium with its neighbour), and
+   the row says so; a frame with fewer than three detections is taken as unmoved and the next
+   frame is registered to it; a frame without detections is left out.
 
 The transforms are applied to detection coordinates, not to the images: every detection is
 mapped exactly into the frame of reference of the first frame (no resampling, no
@@ -207,6 +209,7 @@ class Registrar:
         self._prev_pts = None
         self._prev_centre = None
         self._cum = np.eye(3)       # frame t → frame 0 is inv(self._cum)
+        self._growth = 1.0          # last scale between frames measured from the primordia
         self._ref_cum = np.eye(3)
 
     def update(self, t: int, view: np.ndarray, points_xy_px: np.ndarray, apex_xy_px=None) -> dict:
@@ -226,10 +229,13 @@ class Registrar:
         if not self.enabled:
             method = "off"
         elif self._prev_view is None:
-            if len(pts) >= self.min_points:
+            if len(pts):
                 self._store(view, pts, apex)
         elif len(pts) < self.min_points:
             method = "skipped (too few detections)"
+            if len(pts):
+                # the next frame is compared with this one (the nearer in time), taken as unmoved
+                self._store(view, pts, apex)
         else:
             guess = phase_shift(self._prev_view, view)
             fit = match_points(self._prev_pts, pts, guess, self.match_tol_px, self.max_rotation_deg,
@@ -247,8 +253,13 @@ class Registrar:
             if shift is not None:
                 step = rigid_matrix(phi, shift, f)
                 method, n, rms, scale = "primordia", fit["n"], fit["rms"] * px, s
+                self._growth = float(s)
             elif float(np.hypot(*guess)) > self.match_tol_px:
                 method = "skipped (no consistent motion found)"
+            elif not self._explains(pts, guess):
+                # few primordia in an expanding pattern can make the correlation align one
+                # primordium with its neighbour: a shift the detections do not bear out is not used
+                method = "skipped (correlation shift not borne out by the primordia)"
             else:
                 step = rigid_matrix(0.0, guess, self.field_centre)
                 method = "phase correlation (translation only)"
@@ -267,6 +278,29 @@ class Registrar:
                "scale": float(scale), "n_matched": int(n), "rms_um": float(rms), "method": method}
         self.rows.append(row)
         return row
+
+    def _explains(self, pts: np.ndarray, shift) -> bool:
+        """Do the detections follow the previous frame's better with ``shift`` than without?
+
+        The previous detections are moved outward about the apex centre by one frame's growth
+        (the last scale measured from the primordia, else none) and shifted; the score is the
+        mean distance from each detection to the nearest moved one and back, capped at the
+        matching tolerance."""
+        from scipy.spatial import cKDTree
+
+        if self._prev_pts is None or not len(self._prev_pts) or not len(pts):
+            return True
+        c = self._prev_centre
+        base = c + self._growth * (self._prev_pts - c)
+        tol = self.match_tol_px
+
+        def score(v):
+            pred = base + np.asarray(v, float)
+            d1 = cKDTree(pred).query(pts)[0]
+            d2 = cKDTree(pts).query(pred)[0]
+            return float(np.mean(np.minimum(d1, tol)) + np.mean(np.minimum(d2, tol)))
+
+        return score(shift) < score((0.0, 0.0))
 
     def _store(self, view, pts, apex):
         self._prev_view = np.asarray(view, np.float32).copy()

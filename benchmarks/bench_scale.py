@@ -12,7 +12,7 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
 4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up).
 
 Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own. Results are printed
-and written to ``benchmarks/results.json``; ``RESULTS.md`` is written by hand from them.
+and written to ``benchmarks/results_scale.json``; ``RESULTS.md`` is written by hand from them.
 """
 
 from __future__ import annotations
@@ -231,7 +231,7 @@ def main() -> None:
         print(f"{k:40s} {v}")
     result = {"machine": machine, "load_avg_at_end": os.getloadavg(), "scaling": rows, "detection": det,
               "batch": batch, "summary": summary, "date": time.strftime("%Y-%m-%d %H:%M")}
-    (HERE / "results.json").write_text(json.dumps(result, indent=2, default=float) + "\n", encoding="utf-8")
+    (HERE / "results_scale.json").write_text(json.dumps(result, indent=2, default=float) + "\n", encoding="utf-8")
 
 
 if __name__ == "__main__":  # dask worker processes are spawned: guard the entry point

@@ -50,6 +50,17 @@ def batch_run(client, stacks, tmp_path_factory):
     return res
 
 
+def _close(a, b, rtol=1e-6) -> bool:
+    """Nested JSON values equal, floats to a relative tolerance."""
+    if isinstance(a, dict):
+        return isinstance(b, dict) and a.keys() == b.keys() and all(_close(a[k], b[k], rtol) for k in a)
+    if isinstance(a, list):
+        return isinstance(b, list) and len(a) == len(b) and all(_close(x, y, rtol) for x, y in zip(a, b))
+    if isinstance(a, float) and isinstance(b, (int, float)) and not isinstance(b, bool):
+        return b == pytest.approx(a, rel=rtol, abs=1e-12)
+    return a == b
+
+
 def test_find_stacks_and_names(tmp_path):
     import numpy as np
     import tifffile
@@ -83,21 +94,27 @@ def test_batch_gives_the_same_tables_as_one_by_one(batch_run, stacks, tmp_path):
         alone = tmp_path / name
         single = analyse(stacks / f"{name}.tif", out=alone, progress=False, write_report=False, **SETTINGS)
         batch_dir = res.out / name
+        # dask workers run BLAS/OpenMP single-threaded (distributed sets OMP_NUM_THREADS=1), this
+        # process may not: sums are then rounded in another order, so floats agree to ~1e-9, not
+        # bit for bit; everything else (rows, ids, ranks, flags, text) is identical
         for table in TABLES:
             a, b = alone / f"{table}.csv", batch_dir / f"{table}.csv"
             assert a.exists() == b.exists(), (name, table)
             if a.exists():
-                assert a.read_bytes() == b.read_bytes(), (name, table)
+                pd.testing.assert_frame_equal(pd.read_csv(a), pd.read_csv(b), check_exact=False, rtol=1e-6,
+                                              obj=f"{name}/{table}")
         s_alone = json.loads((alone / "summary.json").read_text(encoding="utf-8"))
         s_batch = json.loads((batch_dir / "summary.json").read_text(encoding="utf-8"))
-        assert s_alone == s_batch, name
+        assert s_alone.keys() == s_batch.keys()
+        assert json.dumps(s_alone, sort_keys=True) == json.dumps(s_batch, sort_keys=True) or \
+            _close(s_alone, s_batch), name
         assert (batch_dir / "report.html").exists() and (batch_dir / "topview.tif").exists()
         # the experiment row carries the stack's summary figures
         row = ok[ok["stack"] == name].iloc[0]
         assert row["n_primordia"] == single.summary["n_primordia"]
         for key in ("divergence_mean_deg", "plastochron_h", "plastochron_ratio"):
             v = single.summary.get(key)
-            assert (pd.isna(row[key]) if v is None else row[key] == pytest.approx(v, rel=1e-12)), key
+            assert (pd.isna(row[key]) if v is None else row[key] == pytest.approx(v, rel=1e-6)), key
 
 
 def test_corrupt_stack_is_reported_and_the_others_complete(batch_run):

@@ -116,8 +116,13 @@ def test_topview_file_is_written_frame_by_frame(long_tiff, memmap_run):
         assert 1.0 / tif.pages[0].resolution[0] == pytest.approx(PIXEL_UM)
         views = tif.asarray()
     raw = tifffile.imread(long_tiff)
-    for t in (0, 7, 15):  # close to numpy's maximum over z (the top view may be registered)
-        assert np.corrcoef(views[t].ravel(), raw[t].max(axis=0).ravel())[0, 1] > 0.8
+    assert np.isfinite(views).all()
+    for t in (0, 7, 15):
+        # the top view may be registered (shifted, rotated), so compare levels, not pixels: the
+        # background and the bright primordia of numpy's maximum over z are kept
+        ref = raw[t].max(axis=0).astype(float)
+        for q in (50, 99):
+            assert np.percentile(views[t], q) == pytest.approx(np.percentile(ref, q), rel=0.25), (t, q)
 
 
 def test_ome_zarr_is_read_with_its_scale_and_streams(long_tiff, memmap_run, tmp_path):
