@@ -65,6 +65,9 @@ class MotionModel:
         Standard error of the centre (per axis, median over frames).
     n_tracks, n_new : int
         Tracks used and new primordia in the rim constraint.
+    anchor : str
+        What fixed the common vector of the centres: ``"rim+pattern"`` (births on the rim and
+        the regular turn between successive primordia), ``"pattern"``, ``"hint"`` or ``""``.
     offsets : dict
         Offset of each track from the centre at ``t_ref_h`` (complex µm).
     """
@@ -79,6 +82,7 @@ class MotionModel:
     centre_sd_um: float = math.nan
     n_tracks: int = 0
     n_new: int = 0
+    anchor: str = ""
     offsets: dict = field(default_factory=dict, repr=False)
 
     def centre(self, t_h) -> np.ndarray:
@@ -112,7 +116,8 @@ class MotionModel:
                 "centre_x_um": float(fc[0].real), "centre_y_um": float(fc[0].imag),
                 "drift_x_um_per_h": drift.real, "drift_y_um_per_h": drift.imag,
                 "rim_radius_um": self.rim_radius_um, "rms_um": self.rms_um,
-                "centre_sd_um": self.centre_sd_um, "n_tracks": self.n_tracks, "n_new": self.n_new}
+                "centre_sd_um": self.centre_sd_um, "n_tracks": self.n_tracks, "n_new": self.n_new,
+                "anchor": self.anchor}
 
 
 def _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega):
@@ -302,7 +307,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                 ok[:] = False  # a hint outside the primordia cannot be the centre: not used
         if ok.any():
             hinted = MotionModel(gamma, omega, frame_time, model.frame_centres + e * b, t_ref, rms_um=rms,
-                                 n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()})
+                                 n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()}, anchor="hint")
             model = hinted
     if not rim:
         return model
@@ -314,7 +319,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     if b is not None:
         e = np.exp((gamma + 1j * omega) * (frame_time - t_ref))
         model = MotionModel(gamma, omega, frame_time, model.frame_centres + e * b, t_ref, rms_um=rms,
-                            n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()})
+                            n_tracks=n, offsets={k: a - b for k, a in model.offsets.items()}, anchor="pattern")
         hinted = model
 
     # rim constraint from the primordia seen appearing
@@ -335,7 +340,8 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         # starting after the first frame inside the other primordia of its frame (tracks
         # entering the field of view start on the outside)
         new = (first["frame"].to_numpy() > f0) & (inside if (it == 0 and hinted is None) else near_rim)
-        new &= n_seen > 1  # a blob seen once is too often noise to pin the rim
+        # a blob seen once is too often noise to pin the rim, unless it appears in the last frame
+        new &= (n_seen > 1) | (ff_idx == n_f - 1)
         if new.sum() < 3:
             return model
         zn, fn = zf[new], ff_idx[new]
@@ -385,7 +391,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
         model = MotionModel(float(p[0]), float(p[1]), frame_time, _fill_centres(centres, has_data, frame_time),
                             t_ref, rim_radius_um=float(p[2]),
                             rms_um=float(np.sqrt(np.sum(res_m ** 2) / max(len(t), 1) / 2)),
-                            centre_sd_um=csd, n_tracks=n, n_new=int(new.sum()),
+                            centre_sd_um=csd, n_tracks=n, n_new=int(new.sum()), anchor="rim+pattern",
                             offsets={k: complex(p[k0 + 2 * i], p[k0 + 1 + 2 * i]) for i, k in enumerate(ids)})
     return model
 

@@ -512,10 +512,11 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         motion = link_info.pop("model", None)
         centres, centre_info = choose_centres(tracks, centres, s.centre_method, s.centre_um)
         if (s.centre_um is None and s.centre_method in ("auto", "motion") and motion is not None
-                and motion.n_new >= 3):
-            # the linking's motion fit: one centre for registered tracks, or a centre per frame
-            # pinned by the rim on which new primordia appear
-            how = "motion+rim"
+                and (motion.n_new >= 3 or motion.anchor == "pattern")):
+            # the linking's motion fit: a centre per frame pinned by the rim on which new
+            # primordia appear and by the regular turn between successive primordia (the latter
+            # alone when too few births were seen)
+            how = "motion+rim" if motion.n_new >= 3 else "motion+pattern"
             mc = motion.centres_table(centres["frame"], centres["time_h"])
             centres = centres.assign(x_um=mc["x_um"].to_numpy(), y_um=mc["y_um"].to_numpy(),
                                      method=how, centre_sd_um=mc["centre_sd_um"].to_numpy())

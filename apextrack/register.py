@@ -250,6 +250,9 @@ class Registrar:
                 # a larger step means the few matched primordia did not constrain the fit
                 if float(np.hypot(*shift)) > self.match_tol_px:
                     shift = None
+                # matched primordia that a similarity leaves far apart were matched wrongly
+                elif fit["rms"] > max(1.0, 0.15 * self.match_tol_px):
+                    shift = None
             if shift is not None:
                 step = rigid_matrix(phi, shift, f)
                 method, n, rms, scale = "primordia", fit["n"], fit["rms"] * px, s
