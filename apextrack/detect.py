@@ -168,7 +168,8 @@ def _gauss_fit(img: np.ndarray, y0: np.ndarray, x0: np.ndarray, s0: np.ndarray, 
     31 values): every pixel still counts, and the block mean of point samples of a Gaussian of
     s.d. ``s`` is, to within ((b² − 1)/12 / s²)², a Gaussian of variance ``s² + (b² − 1)/12`` at
     the block centre, which the fit undoes for ``s`` and ``A`` (the position is unbiased by
-    symmetry). Smaller windows are padded with masked values. A blob stops iterating once its
+    symmetry). Smaller windows are padded with masked values, and so is the part of a window
+    beyond the image's edge. A blob stops iterating once its
     accepted position step is under 0.002 px; the model and its Jacobian are evaluated in
     float32 (the 5×5 normal equations are solved in float64).
 
@@ -193,8 +194,13 @@ def _gauss_fit(img: np.ndarray, y0: np.ndarray, x0: np.ndarray, s0: np.ndarray, 
     vals = img[np.clip(rows, 0, ny - 1)[:, :, :, None, None], np.clip(cols, 0, nx - 1)[:, None, None, :, :]]
     wgt = (use[:, :, :, None, None] & use[:, None, None, :, :]).astype(np.float32)
     win = ((vals * wgt).sum(axis=(2, 4)) / (b * b)[:, None, None].astype(np.float32)).reshape(k, -1)
-    inb = j[None, :] < nb[:, None]
-    mask = (inb[:, :, None] & inb[:, None, :]).reshape(k, -1).astype(np.float32)
+    # a block counts when it is part of this blob's window and lies wholly inside the image
+    # (pixels beyond the edge are left out, not replaced by the edge's values)
+    in_y = (j[None, :] < nb[:, None]) & (start_y[:, None] + j[None, :] * b[:, None] >= 0) & (
+        start_y[:, None] + (j[None, :] + 1) * b[:, None] <= ny)
+    in_x = (j[None, :] < nb[:, None]) & (start_x[:, None] + j[None, :] * b[:, None] >= 0) & (
+        start_x[:, None] + (j[None, :] + 1) * b[:, None] <= nx)
+    mask = (in_y[:, :, None] & in_x[:, None, :]).reshape(k, -1).astype(np.float32)
     centre = (b - 1) / 2.0
     by = (start_y[:, None] + j[None, :] * b[:, None] + centre[:, None]).astype(np.float32)     # (k, N)
     bx = (start_x[:, None] + j[None, :] * b[:, None] + centre[:, None]).astype(np.float32)
