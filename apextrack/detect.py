@@ -2,15 +2,19 @@
 
 Pipeline of :func:`detect_blobs` (2D top view):
 
-1. **Pyramid LoG.** For every scale σ the image is smoothed and decimated by the largest power
-   of two ``f`` that keeps at least 1.6 coarse pixels per σ, and the scale-normalised negative
-   LoG ``-σ²∇²G`` is computed on the coarse grid with the remaining scale
-   ``√(σ² − σ_aa²)/f`` (Gaussian semigroup: the total smoothing is exactly σ). The coarse scales
-   thus cost a fraction of the full-resolution filter; this is what makes the detector many
-   times faster than evaluating every scale at full resolution (see ``benchmarks/bench_image.py``).
-2. **Candidates.** Local maxima in space on each scale's grid, above an adaptive threshold
-   (``k`` × the robust standard deviation of that frame's response at that scale), which are
-   also maxima across the neighbouring scales.
+0. **Apex region first.** With a region given, only its bounding box (plus a margin that holds
+   the photometry annulus) is searched.
+1. **Decimated LoG in the Fourier domain.** The image is padded and Fourier transformed once;
+   every scale multiplies the spectrum by the exact transfer function of the scale-normalised
+   negative LoG ``-σ²∇²G_σ`` and is transformed back on a grid decimated by the largest power
+   of two ``f`` that keeps ≥ 1.25 coarse pixels per σ of the smallest scale (keeping only the
+   band that grid holds is an ideal anti-alias filter; what it drops is under 1 % of the peak
+   response). All scales share one grid, so comparing scales needs no interpolation. This and
+   the steps below are what make the detector many times faster than evaluating every scale
+   at full resolution (see ``benchmarks/bench_image.py``).
+2. **Candidates.** Local maxima in space (3×3) above an adaptive threshold (``k`` × the robust
+   standard deviation of that frame's response at that scale) and above a cheap peak test
+   against the frame's pixel noise, which are also maxima across the neighbouring scales.
 3. **Scale and radius.** The selected scale is refined by a parabola in log σ through the
    responses at the neighbouring scales. For a Gaussian profile of standard deviation ``s`` the
    scale-normalised LoG peaks at σ = ``s`` (Lindeberg 1998, IJCV 30); the reported radius is
@@ -18,8 +22,10 @@ Pipeline of :func:`detect_blobs` (2D top view):
    (scikit-image ``blob_log`` convention) — so a Gaussian blob of standard deviation ``s`` is
    reported with ``sigma_px = s`` and ``radius_px = √2·s``.
 4. **Subpixel position.** A least-squares fit of a 2D Gaussian plus constant background
-   (Gauss–Newton, all blobs at once) on a window of ±2.5σ at full resolution; a candidate the
-   fit cannot turn into a plausible blob (an edge or a ridge) is dropped. With ``fit=False`` the
+   (Levenberg–Marquardt, all blobs in one batch) on a window of ±2.5σ of the full-resolution
+   image (wide windows averaged in small blocks, which keeps every pixel's signal; pixels
+   beyond the image's edge left out); a candidate the fit cannot turn into a plausible blob (an
+   edge or a ridge) is dropped. With ``fit=False`` the
    parabola peak of the LoG response is kept instead.
 5. **Photometry.** Local background (median of an annulus 2r–3r), its noise (robust SD),
    peak above background, integrated intensity within r and SNR = peak / noise. Blobs under
@@ -375,7 +381,8 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
         response at the same scale (adaptive per frame, insensitive to overall brightness).
     region : (x, y, radius) in pixels, optional
         The apex region (see :func:`apex_region`); with ``region_factor``, blobs farther than
-        ``region_factor × radius`` from ``(x, y)`` are rejected.
+        ``region_factor × radius`` from ``(x, y)`` are rejected, and only the region's bounding
+        box (with a margin of 4.5 σ of the largest scale) is searched.
     region_factor : float, optional
     fit : bool
         Refine positions by a least-squares Gaussian fit (else: parabola on the LoG response).

@@ -168,3 +168,55 @@ def test_3d_detection_finds_the_blob_centre():
     assert len(df) == 1
     assert abs(df.x_px[0] - 21.4) < 0.5 and abs(df.y_px[0] - 25.7) < 0.5 and abs(df.z_px[0] - 7.3) < 0.5
     assert df.radius_px[0] == pytest.approx(math.sqrt(3) * df.sigma_px[0])
+
+
+def test_wide_blobs_reach_mortensen_least_squares_precision():
+    # Mortensen, Churchman, Spudich & Flyvbjerg 2010, Nat. Methods 7:377, eq. (6), as above, for
+    # primordium-sized spots (s = 6 px): their fit windows are averaged in 2×2 blocks, which
+    # must not cost precision
+    s, n_photons, b2, a = 6.0, 20000.0, 10.0, 1.0
+    s_a2 = s ** 2 + a ** 2 / 12
+    bound = math.sqrt(s_a2 / n_photons * (16 / 9 + 8 * math.pi * s_a2 * b2 / (n_photons * a ** 2)))
+    rng = np.random.default_rng(11)
+    errors = []
+    for _ in range(5):
+        expected, truth = _spots(rng, 4, 72, s, n_photons, b2)
+        img = rng.poisson(expected).astype(np.float32)
+        df = detect_blobs(img, scales_px(10, 30, 1.0, 6), min_snr=3)
+        err, ok = _match(df, truth)
+        assert ok.mean() == 1.0
+        errors.append(err)
+    rmse = float(np.sqrt(np.mean(np.concatenate(errors) ** 2)))
+    assert 0.8 * bound <= rmse <= 1.2 * bound, (rmse, bound)
+
+
+def test_spot_at_the_image_edge_is_not_pulled_outwards():
+    # common practice, no source: pixels beyond the edge are unknown, not copies of the edge;
+    # a spot 4 px from the border is found where it is
+    yy, xx = np.mgrid[:64, :64]
+    img = 200 * np.exp(-((xx - 59.6) ** 2 + (yy - 30.2) ** 2) / (2 * 4.0 ** 2)) + 20
+    img = img + np.random.default_rng(2).normal(0, 1.0, img.shape)
+    df = detect_blobs(img, scales_px(6, 20, 1.0, 6))
+    assert len(df) == 1
+    assert abs(df.x_px[0] - 59.6) < 0.1 and abs(df.y_px[0] - 30.2) < 0.1
+
+
+def test_apex_region_search_finds_the_same_blobs_as_the_whole_frame():
+    # common practice, no source: searching only the apex region's bounding box is a shortcut
+    # that must not change which blobs inside the region are found, nor where
+    rng = np.random.default_rng(4)
+    yy, xx = np.mgrid[:256, :256]
+    img = np.full((256, 256), 20.0)
+    for _ in range(25):
+        x, y = rng.uniform(10, 246, 2)
+        img += 150 * np.exp(-((xx - x) ** 2 + (yy - y) ** 2) / (2 * rng.uniform(3, 6) ** 2))
+    img = (img + rng.normal(0, 2.0, img.shape)).astype(np.float32)
+    sig = scales_px(6, 20, 1.0, 6)
+    region = (90.0, 110.0, 50.0)
+    whole = detect_blobs(img, sig)
+    inside = np.hypot(whole.x_px - 90.0, whole.y_px - 110.0) <= 1.2 * 50.0
+    cropped = detect_blobs(img, sig, region=region, region_factor=1.2)
+    assert 3 <= len(cropped) < len(whole)
+    assert len(cropped) == int(inside.sum())
+    ref = whole[inside].reset_index(drop=True)
+    np.testing.assert_allclose(cropped[["x_px", "y_px"]].to_numpy(), ref[["x_px", "y_px"]].to_numpy(), atol=0.02)

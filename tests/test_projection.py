@@ -54,3 +54,18 @@ def test_columns_without_surface_fall_back_to_the_maximum():
     assert np.isnan(hm.z_um).all()
     v[2, 3, 3] = 7.0
     assert shell_projection(v, hm, 1.0, 2.0)[3, 3] == pytest.approx(7.0)
+
+
+def test_height_map_and_shell_are_the_same_from_the_stacks_own_dtype():
+    # common practice, no source: the volume is binned and projected in its own (integer)
+    # dtype without a float copy; the results must equal those from a float32 copy
+    s = make_synthetic_stack(n_frames=1, shape_zyx=(16, 64, 64), z_step_um=1.5, seed=5)
+    raw = np.asarray(s.data[0])
+    assert raw.dtype == np.uint16
+    flt = raw.astype(np.float32)
+    a = surface_height(raw, 1.5, 0.8)
+    b = surface_height(flt, 1.5, 0.8)
+    np.testing.assert_array_equal(a.z_um, b.z_um)
+    np.testing.assert_array_equal(shell_projection(raw, a, 1.5, 6.0), shell_projection(flt, b, 1.5, 6.0))
+    assert max_projection(raw).dtype == np.float32
+    np.testing.assert_array_equal(max_projection(raw), flt.max(axis=0))
