@@ -120,42 +120,62 @@ class MotionModel:
                 "anchor": self.anchor}
 
 
-def _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega):
-    """Design matrix of z = c_f + exp(λ(t − t_ref))·a_k: one column per frame, one per track."""
-    e = np.exp((gamma + 1j * omega) * (t - t_ref))
-    a = np.zeros((len(t), n_frames + n), complex)
-    rows = np.arange(len(t))
-    a[rows, fidx] = 1.0
-    a[rows, n_frames + tid] = e
-    return a
-
-
 #: Scatter of the second difference of the apex centre between frames (µm) that the motion fit
 #: allows for: the centre left by registration moves smoothly, and a frame with one or two
 #: primordia cannot place its centre alone (common practice, no source).
 CENTRE_STEP_SD_UM = 0.5
 
 
-def _smoothing_rows(n_frames: int, n: int, weight: float) -> np.ndarray:
-    """Rows ``weight·(c_{f−1} − 2c_f + c_{f+1})`` of the centre smoothness prior."""
-    m = max(n_frames - 2, 0)
-    s = np.zeros((m, n_frames + n), complex)
-    for i in range(m):
-        s[i, i:i + 3] = (weight, -2.0 * weight, weight)
-    return s
+def _second_difference_gram(n_frames: int) -> np.ndarray:
+    """``DᵀD`` for the second-difference operator ``D`` (rows ``c_{f−1} − 2c_f + c_{f+1}``)."""
+    if n_frames < 3:
+        return np.zeros((n_frames, n_frames))
+    d = np.diff(np.eye(n_frames), 2, axis=0)
+    return d.T @ d
 
 
 def _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, gamma, omega, smooth: float = 0.0):
     """Least squares of the centres and offsets for a fixed λ = γ + iω (``smooth``: weight of
-    the centre smoothness prior, in units of the position error)."""
-    a = _design(t, fidx, tid, n_frames, n, t_ref, gamma, omega)
-    zz = z
-    if smooth > 0 and n_frames > 2:
-        a = np.vstack([a, _smoothing_rows(n_frames, n, smooth)])
-        zz = np.concatenate([z, np.zeros(n_frames - 2, complex)])
-    coef, *_ = np.linalg.lstsq(a, zz, rcond=None)
-    res = zz - a @ coef
-    return coef, float(np.sum(np.abs(res) ** 2))
+    the centre smoothness prior, in units of the position error).
+
+    The model ``z_i = c_{f_i} + exp(λ(t_i − t_ref))·a_{k_i}`` (plus the prior rows
+    ``smooth·(c_{f−1} − 2c_f + c_{f+1}) = 0``) is linear in the centres c and offsets a. Its
+    normal equations have a diagonal offset block, so the offsets are eliminated and only the
+    small frames × frames Schur complement is solved (Cholesky; least squares when singular):
+    the cost grows with the number of detections, not with their square. Returns the
+    coefficients ``[c_0 … c_{F−1}, a_0 … a_{n−1}]`` and the residual sum of squares.
+    """
+    e = np.exp((gamma + 1j * omega) * (t - t_ref))
+    cnt = np.bincount(fidx, minlength=n_frames).astype(float)
+    dk = np.maximum(np.bincount(tid, weights=e.real ** 2 + e.imag ** 2, minlength=n), 1e-300)
+    key = fidx * n + tid
+    bfk = (np.bincount(key, weights=e.real, minlength=n_frames * n)
+           + 1j * np.bincount(key, weights=e.imag, minlength=n_frames * n)).reshape(n_frames, n)
+    rf = np.bincount(fidx, weights=z.real, minlength=n_frames) + 1j * np.bincount(fidx, weights=z.imag,
+                                                                                 minlength=n_frames)
+    cez = np.conj(e) * z
+    rk = np.bincount(tid, weights=cez.real, minlength=n) + 1j * np.bincount(tid, weights=cez.imag, minlength=n)
+    bd = bfk / dk
+    m = np.diag(cnt).astype(complex) - bd @ np.conj(bfk.T)
+    use_smooth = smooth > 0 and n_frames > 2
+    if use_smooth:
+        m += smooth ** 2 * _second_difference_gram(n_frames)
+    rhs = rf - bd @ rk
+    try:
+        from scipy.linalg import cho_factor, cho_solve
+
+        c = cho_solve(cho_factor(m, lower=True, check_finite=False), rhs, check_finite=False)
+        if not np.all(np.isfinite(c)):
+            raise np.linalg.LinAlgError
+    except (np.linalg.LinAlgError, ValueError):
+        c = np.linalg.lstsq(m, rhs, rcond=None)[0]
+    a = (rk - np.conj(bfk.T) @ c) / dk
+    res = z - c[fidx] - e * a[tid]
+    sse = float(np.sum(res.real ** 2 + res.imag ** 2))
+    if use_smooth:
+        d2 = c[:-2] - 2.0 * c[1:-1] + c[2:]
+        sse += smooth ** 2 * float(np.sum(d2.real ** 2 + d2.imag ** 2))
+    return np.concatenate([c, a]), sse
 
 
 def _fill_centres(centres: np.ndarray, has_data: np.ndarray, times: np.ndarray) -> np.ndarray:

@@ -4,7 +4,7 @@
 
 ``surface``: a surface-shell projection. The dome surface is found per (x, y) column as the
 outermost significant intensity peak along z (seen from the side the dome faces), on a
-laterally binned and smoothed copy of the volume (the surface is smooth; binning makes this
+laterally binned (read in the stack's own dtype, slice by slice) and smoothed copy of the volume (the surface is smooth; binning makes this
 cheap), interpolated to subslice precision by a Gaussian (log-parabola) through the peak
 slice and its neighbours, and resampled to full resolution. The top view is then the maximum
 of the signal within a shell from the surface down to ``shell_depth_um`` below it, which keeps
@@ -79,10 +79,33 @@ class HeightMap:
             return np.where(den > 0.5, num / np.maximum(den, 1e-9), np.nan)
 
     def full(self) -> np.ndarray:
-        """The height map resampled to every pixel (µm; NaN where unknown)."""
+        """The height map resampled to every pixel (µm; NaN where unknown).
+
+        The same bilinear interpolation as :meth:`at`, done separably (rows, then columns),
+        since the pixels form a regular grid.
+        """
         ny, nx = self.shape_yx
-        yy, xx = np.mgrid[0:ny, 0:nx]
-        return self.at(xx.ravel(), yy.ravel()).reshape(ny, nx).astype(np.float32)
+        off = (self.bin_px - 1) / 2.0
+        valid = np.isfinite(self.z_um)
+        z = np.where(valid, self.z_um, 0.0)
+        w = valid.astype(float)
+
+        def weights(n_out, n_in):
+            g = np.clip((np.arange(n_out) - off) / self.bin_px, 0, n_in - 1)
+            i0 = np.minimum(np.floor(g).astype(int), max(n_in - 2, 0))
+            f = g - i0
+            return i0, np.minimum(i0 + 1, n_in - 1), f
+
+        y0, y1, fy = weights(ny, z.shape[0])
+        x0, x1, fx = weights(nx, z.shape[1])
+
+        def resample(a):
+            rows = a[y0] * (1 - fy)[:, None] + a[y1] * fy[:, None]
+            return rows[:, x0] * (1 - fx)[None, :] + rows[:, x1] * fx[None, :]
+
+        num, den = resample(z * w), resample(w)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(den > 0.5, num / np.maximum(den, 1e-9), np.nan).astype(np.float32)
 
 
 def _bin(volume: np.ndarray, b: int) -> np.ndarray:
@@ -197,9 +220,9 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     typical = float(np.percentile(top, 75))
     thr = bg + rel_level * (np.minimum(top, typical) - bg)
     # peaks: not lower than either neighbour along z (edges count as one-sided peaks)
-    up_n = np.concatenate([p[1:], np.full((1,) + p.shape[1:], -np.inf, np.float32)])
-    dn_n = np.concatenate([np.full((1,) + p.shape[1:], -np.inf, np.float32), p[:-1]])
-    peak = (p >= up_n) & (p >= dn_n) & (p >= thr[None])
+    peak = p >= thr[None]
+    peak[:-1] &= p[:-1] >= p[1:]
+    peak[1:] &= p[1:] >= p[:-1]
     # outermost = highest index on the dome's side
     idx = (nz - 1) - np.argmax(peak[::-1], axis=0)
     # columns whose top is far below the typical surface hold no surface (it left the stack)
