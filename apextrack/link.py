@@ -377,27 +377,19 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                              np.column_stack([c0.real, c0.imag]).ravel(),
                              np.column_stack([a0.real, a0.imag]).ravel(), [alpha0]])
         k0 = 3 + 2 * n_f
-        k1 = k0 + 2 * n
-
-        def resid(p):
-            c = p[3:k0:2] + 1j * p[4:k0:2]
-            a = p[k0:k1:2] + 1j * p[k0 + 1:k1:2]
-            zm = c[fidx] + np.exp((p[0] + 1j * p[1]) * (t - t_ref)) * a[tid]
-            rm = (z - zm) / sigma_m
-            rr = (np.abs(zn - c[fn]) - p[2]) / sigma_r
-            # chord between each turn and the common one: smooth, bounded for outliers
-            rt = (_turns(a, pa, pb) - np.exp(1j * p[k1])) / TURN_SD_RAD
-            rs = (c[:-2] - 2.0 * c[1:-1] + c[2:]) / CENTRE_STEP_SD_UM
-            return np.concatenate([rm.real, rm.imag, rr, rt.real, rt.imag, rs.real, rs.imag])
-
-        sol = least_squares(resid, p0, loss="soft_l1", f_scale=3.0, x_scale="jac")
+        resid, jac = _rim_problem(t - t_ref, z, fidx, tid, n_f, n, zn, fn, pa, pb, sigma_m, sigma_r)
+        # analytic sparse Jacobian: the trust-region steps are solved by LSMR on it, so a step
+        # costs about the number of detections (a dense numerical Jacobian and its SVD grew
+        # with the cube of the record length)
+        sol = least_squares(resid, p0, jac=jac, loss="soft_l1", f_scale=3.0, x_scale="jac", tr_solver="lsmr")
         p = sol.x
         if not p[0] > 0:
             return model
         dof = max(len(sol.fun) - len(p), 1)
         scale = float(np.sum(sol.fun ** 2) / dof)
         try:
-            cov = np.linalg.pinv(sol.jac.T @ sol.jac) * scale
+            jj = sol.jac.T @ sol.jac
+            cov = np.linalg.pinv(jj.toarray() if hasattr(jj, "toarray") else jj) * scale
             var_c = (np.diag(cov)[3:k0:2] + np.diag(cov)[4:k0:2]) / 2.0
             csd = float(np.sqrt(max(float(np.median(var_c[has_data])), 0.0)))
         except np.linalg.LinAlgError:
@@ -414,6 +406,105 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
                             centre_sd_um=csd, n_tracks=n, n_new=int(new.sum()), anchor="rim+pattern",
                             offsets={k: complex(p[k0 + 2 * i], p[k0 + 1 + 2 * i]) for i, k in enumerate(ids)})
     return model
+
+
+def _rim_problem(tau, z, fidx, tid, n_f, n, zn, fn, pa, pb, sigma_m, sigma_r):
+    """Residuals and their analytic (sparse) Jacobian for the motion fit with the rim and
+    turn-regularity terms.
+
+    Parameters ``p = [γ, ω, R, Re c_0, Im c_0, …, Re a_0, Im a_0, …, α]``; residuals, in this
+    order: the positions ``(z − c_f − exp(λτ)·a_k)/σ_m`` (real parts, then imaginary parts), the
+    rim ``(|z_new − c_f| − R)/σ_r``, the turns between successive primordia against the common
+    one ``(u_j − exp(iα))/TURN_SD_RAD`` (real, imaginary) and the centre smoothness prior
+    ``(c_{f−1} − 2c_f + c_{f+1})/CENTRE_STEP_SD_UM`` (real, imaginary). Every row depends on at
+    most seven parameters.
+    """
+    from scipy import sparse
+
+    k0 = 3 + 2 * n_f
+    k1 = k0 + 2 * n
+    n_par = k1 + 1
+    nd, nn, npair, ns = len(z), len(zn), len(pa), max(n_f - 2, 0)
+    n_res = 2 * nd + nn + 2 * npair + 2 * ns
+
+    def unpack(p):
+        return p[3:k0:2] + 1j * p[4:k0:2], p[k0:k1:2] + 1j * p[k0 + 1:k1:2]
+
+    def resid(p):
+        c, a = unpack(p)
+        zm = c[fidx] + np.exp((p[0] + 1j * p[1]) * tau) * a[tid]
+        rm = (z - zm) / sigma_m
+        rr = (np.abs(zn - c[fn]) - p[2]) / sigma_r
+        # chord between each turn and the common one: smooth, bounded for outliers
+        rt = (_turns(a, pa, pb) - np.exp(1j * p[k1])) / TURN_SD_RAD
+        rs = (c[:-2] - 2.0 * c[1:-1] + c[2:]) / CENTRE_STEP_SD_UM
+        return np.concatenate([rm.real, rm.imag, rr, rt.real, rt.imag, rs.real, rs.imag])
+
+    # fixed parts of the pattern
+    i_m = np.arange(nd)
+    cf_re, cf_im = 3 + 2 * fidx, 4 + 2 * fidx
+    ak_re, ak_im = k0 + 2 * tid, k0 + 1 + 2 * tid
+    i_r = 2 * nd + np.arange(nn)
+    i_t = 2 * nd + nn + np.arange(npair)
+    i_s = 2 * nd + nn + 2 * npair + np.arange(ns)
+    fs = np.arange(ns)
+
+    def jac(p):
+        c, a = unpack(p)
+        e = np.exp((p[0] + 1j * p[1]) * tau)
+        ea = e * a[tid]
+        rows, cols, vals = [], [], []
+
+        def put(r, cc, v):
+            r, cc, v = np.broadcast_arrays(r, cc, v)
+            rows.append(r.ravel())
+            cols.append(cc.ravel())
+            vals.append(v.ravel())
+
+        # positions: d zm = τ·e·a dγ + iτ·e·a dω + dc + e·da
+        g = -tau * ea / sigma_m
+        w = -1j * tau * ea / sigma_m
+        for base, part in ((i_m, np.real), (i_m + nd, np.imag)):
+            put(base, 0, part(g))
+            put(base, 1, part(w))
+            put(base, ak_re, part(-e / sigma_m))
+            put(base, ak_im, part(-1j * e / sigma_m))
+        put(i_m, cf_re, np.full(nd, -1.0 / sigma_m))
+        put(i_m + nd, cf_im, np.full(nd, -1.0 / sigma_m))
+        # rim: d|w| with w = z_new − c
+        if nn:
+            wv = zn - c[fn]
+            aw = np.maximum(np.abs(wv), 1e-12)
+            put(i_r, 3 + 2 * fn, -wv.real / aw / sigma_r)
+            put(i_r, 4 + 2 * fn, -wv.imag / aw / sigma_r)
+            put(i_r, 2, np.full(nn, -1.0 / sigma_r))
+        # turns u = exp(i(arg a_b − arg a_a)): du = iu·(d arg a_b − d arg a_a)
+        if npair:
+            u = _turns(a, pa, pb)
+            ab, aa = a[pb], a[pa]
+            qb = np.maximum(np.abs(ab) ** 2, 1e-24)
+            qa = np.maximum(np.abs(aa) ** 2, 1e-24)
+            iu = 1j * u / TURN_SD_RAD
+            parts = ((k0 + 2 * pb, iu * (-ab.imag / qb)), (k0 + 1 + 2 * pb, iu * (ab.real / qb)),
+                     (k0 + 2 * pa, iu * (aa.imag / qa)), (k0 + 1 + 2 * pa, iu * (-aa.real / qa)))
+            for cc, v in parts:
+                put(i_t, cc, v.real)
+                put(i_t + npair, cc, v.imag)
+            da = -1j * np.exp(1j * p[k1]) / TURN_SD_RAD
+            put(i_t, k1, np.full(npair, da.real))
+            put(i_t + npair, k1, np.full(npair, da.imag))
+        # centre smoothness prior
+        if ns:
+            for off, wgt in ((0, 1.0), (1, -2.0), (2, 1.0)):
+                v = np.full(ns, wgt / CENTRE_STEP_SD_UM)
+                put(i_s, 3 + 2 * (fs + off), v)
+                put(i_s + ns, 4 + 2 * (fs + off), v)
+        r = np.concatenate(rows).astype(np.int64)
+        cc = np.concatenate(cols).astype(np.int64)
+        v = np.concatenate(vals).astype(float)
+        return sparse.csr_matrix((v, (r, cc)), shape=(n_res, n_par))
+
+    return resid, jac
 
 
 #: Scatter of the turn between successive primordia about the common divergence angle that

@@ -10,7 +10,6 @@ POSIX ``rename`` replaces atomically — common practice, no source).
 from __future__ import annotations
 
 import hashlib
-import importlib.util
 import os
 import subprocess
 import sys
@@ -25,19 +24,9 @@ from apextrack.cli import main
 from apextrack.errors import OutputError
 from apextrack.pipeline import analyse
 from apextrack.tables import atomic_write_text, read_table, write_json, write_table
+from bad_inputs import cases  # the corpus of bad inputs (tests/bad_inputs/cases.py)
 
 
-def _load_cases():
-    name = "apextrack_bad_input_cases"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).parent / "bad_inputs" / "cases.py")
-        module = importlib.util.module_from_spec(spec)
-        sys.modules[name] = module
-        spec.loader.exec_module(module)
-    return sys.modules[name]
-
-
-cases = _load_cases()
 
 
 def snapshot(folder: Path) -> dict[str, str]:

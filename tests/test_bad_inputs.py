@@ -11,13 +11,11 @@ user error.
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import os
 import subprocess
 import sys
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -25,19 +23,9 @@ import pytest
 
 from apextrack.cli import build_parser, main
 from apextrack.errors import ApextrackError, MetadataError, ResultsError
+from bad_inputs import cases  # the corpus of bad inputs (tests/bad_inputs/cases.py)
 
 
-def _load_cases():
-    name = "apextrack_bad_input_cases"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).parent / "bad_inputs" / "cases.py")
-        module = importlib.util.module_from_spec(spec)
-        sys.modules[name] = module
-        spec.loader.exec_module(module)
-    return sys.modules[name]
-
-
-cases = _load_cases()
 
 
 def _commands() -> set[str]:

@@ -11,7 +11,6 @@ from a fixed result).
 from __future__ import annotations
 
 import hashlib
-import importlib.util
 import json
 import os
 import subprocess
@@ -21,19 +20,9 @@ from pathlib import Path
 import pytest
 
 from apextrack.pipeline import analyse
+from bad_inputs import cases  # the corpus of bad inputs (tests/bad_inputs/cases.py)
 
 
-def _load_cases():
-    name = "apextrack_bad_input_cases"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).parent / "bad_inputs" / "cases.py")
-        module = importlib.util.module_from_spec(spec)
-        sys.modules[name] = module
-        spec.loader.exec_module(module)
-    return sys.modules[name]
-
-
-cases = _load_cases()
 
 #: Files that must not differ between two runs of the same input and settings.
 COMPARED = ("*.csv", "summary.json", "topview.tif")

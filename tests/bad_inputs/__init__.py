@@ -1,0 +1,1 @@
+"""A corpus of bad inputs, each with the error it must give (see cases.py)."""
