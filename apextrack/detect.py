@@ -505,7 +505,6 @@ def detect_blobs(image: np.ndarray, sigmas, min_snr: float = 4.0, border_px: int
         return _empty()
     # photometry at the LoG position: local background (annulus 2r–3r), its noise, and the
     # peak estimate; clear non-blobs are dropped before the (costlier) fit
-    n = len(ys)
     bgs, noises, counts = _ring_stats(img, ys, xs, radii)
     for i in np.nonzero(counts < 8)[0]:  # tiny blobs: the whole window outside r instead
         r = float(radii[i])

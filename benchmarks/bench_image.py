@@ -219,7 +219,7 @@ def render(res: dict, before: dict | None) -> str:
             return f"| – | {now} |"
 
     head = "| measure | before | now |\n|---|---:|---:|" if before else "| measure | value |\n|---|---:|"
-    pf, dm, acc = res["per_frame_ms"], res["detect_ms"], res["detect_accuracy"]
+    acc = res["detect_accuracy"]
     lines = [
         "## Image stage",
         "",
@@ -236,8 +236,9 @@ def render(res: dict, before: dict | None) -> str:
         "",
     ]
     if before is not None:
-        lines += [f"\"before\": the same script on the code as it was before this round of work "
-                  f"(load average {before['load_before'][0]:.1f} then).", ""]
+        lines += [f"\"before\": the same script, run just before, on a copy of the package whose detection, "
+                  f"projection, dome fit and image-stage reading were as before this round of work (the rest "
+                  f"as in the working tree; load average {before['load_before'][0]:.1f} then).", ""]
     lines += [head]
     rows = [
         ("detection per 512×512 frame, apextrack, whole frame", lambda r: r["detect_ms"]["ours_full_frame"], "{:.1f} ms"),
