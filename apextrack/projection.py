@@ -14,7 +14,6 @@ of every primordium can be reported and the dome fitted (:mod:`apextrack.apex`).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np

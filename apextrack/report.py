@@ -472,15 +472,12 @@ def fig_parastichies(data: ReportData):
     colours = {"m": "#ff4f9a", "n": "#4fc3ff"}
     drawn = False
     if not par.empty and {"birth_rank", "family", "spiral_index"} <= set(par.columns) and len(ranked):
-        for (fam, idx), g in par.groupby(["family", "spiral_index"], sort=True):
+        for (fam, _), g in par.groupby(["family", "spiral_index"], sort=True):
             g = g.sort_values("birth_rank", kind="stable")
             members = [int(r) for r in g["birth_rank"] if int(r) in ranked.index]
             if len(members) < 2:
                 continue
             xy = ranked.loc[members, ["x_um", "y_um"]].to_numpy(float)
-            number = int(g["parastichy_number"].iloc[0]) if "parastichy_number" in g else None
-            wind = g["winding"].iloc[0] if "winding" in g else ""
-            label = f"{number} parastichies ({wind})" if idx == g["spiral_index"].min() else None
             ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.get(str(fam), "w"), linewidth=1.6, alpha=0.9)
             drawn = True
         for fam, g in par.groupby("family", sort=True):

@@ -7,11 +7,15 @@ A results folder holds ``detections.csv``, ``tracks.csv``, ``primordia.csv``,
 
 from __future__ import annotations
 
+import os
+import platform
+import shutil
+import time
 from pathlib import Path
 
 import pandas as pd
 
-from .errors import ResultsError
+from .errors import OutputError, ResultsError
 from .tables import TABLE_FILES, read_json, read_table, write_json, write_table
 
 #: Tables every results folder must hold.
@@ -55,3 +59,62 @@ def load_results(folder: str | Path) -> dict:
     tv = folder / "topview.tif"
     out["topview"] = tv if tv.exists() else None
     return out
+
+
+def check_output_dir(out: Path, overwrite: bool) -> None:
+    """Refuse an existing non-empty folder unless ``overwrite``; check the parent is writable."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise OutputError("exists and is not a folder", out, "give a folder path for the results")
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise OutputError("results folder exists and is not empty", out, "use --overwrite or another --out")
+    parent = out.parent if not out.exists() else out
+    probe = parent
+    while not probe.exists():
+        probe = probe.parent
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputError("folder is not writable", probe, "choose another output folder")
+
+
+class StagedFolder:
+    """A hidden sibling folder that receives every output and replaces ``out`` when complete."""
+
+    def __init__(self, out: Path):
+        self.out = Path(out)
+        self.out.parent.mkdir(parents=True, exist_ok=True)
+        host = platform.node().replace("-", "_") or "host"
+        self._sweep(host)
+        self.path = self.out.parent / f".{self.out.name}.partial-{host}-{os.getpid()}-{time.time_ns()}"
+        try:
+            self.path.mkdir()
+        except OSError as exc:
+            raise OutputError(f"cannot create the results folder ({exc.strerror})", self.out.parent,
+                              "choose another output folder") from None
+
+    def _sweep(self, host: str) -> None:
+        """Remove staging folders left by killed runs (this host, process no longer running)."""
+        for left in self.out.parent.glob(f".{self.out.name}.partial-{host}-*"):
+            pid = left.name.rsplit("-", 2)[-2]
+            if not pid.isdigit() or int(pid) == os.getpid():
+                continue
+            try:
+                os.kill(int(pid), 0)
+            except ProcessLookupError:
+                shutil.rmtree(left, ignore_errors=True)
+            except (OSError, ValueError):
+                pass
+
+    def commit(self) -> None:
+        old = None
+        if self.out.exists():
+            if self.out.is_dir() and not any(self.out.iterdir()):
+                self.out.rmdir()
+            else:
+                old = self.out.parent / f".{self.out.name}.old-{os.getpid()}-{time.time_ns()}"
+                os.replace(self.out, old)
+        os.replace(self.path, self.out)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+
+    def abort(self) -> None:
+        shutil.rmtree(self.path, ignore_errors=True)

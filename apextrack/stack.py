@@ -142,10 +142,12 @@ class Stack:
             raise InputError(f"cannot read frame {t} ({type(exc).__name__}: {_first_line(exc)})", self.path,
                              "the file may be truncated or corrupt: copy it again") from None
 
-    def frame(self, t: int, channel: int | str | None = None) -> np.ndarray:
-        """One channel of timepoint ``t`` as float32, shape ``(Z, Y, X)`` or ``(Y, X)``.
+    def frame(self, t: int, channel: int | str | None = None, native: bool = False) -> np.ndarray:
+        """One channel of timepoint ``t``, shape ``(Z, Y, X)`` or ``(Y, X)``.
 
-        Raises :class:`InputError` when the frame holds NaN or infinite values.
+        As float32, or with ``native=True`` in the stack's own integer type (no copy of a large
+        volume; float data is always float32). Raises :class:`InputError` when the frame holds
+        NaN or infinite values.
         """
         arr = self.timepoint(t)
         rest = self.axes.replace("T", "")
@@ -154,6 +156,8 @@ class Stack:
         elif channel not in (None, 0, "0") and not (isinstance(channel, str) and channel.lower() in
                                                      [n.lower() for n in self.channel_names]):
             self.channel_index(channel)  # raises a clear error
+        if native and arr.dtype.kind in "uib":
+            return arr
         out = arr.astype(np.float32, copy=False)
         if out.dtype.kind == "f" and not np.isfinite(out).all():
             raise InputError(f"frame {t} holds NaN or infinite values", self.path,

@@ -12,7 +12,6 @@ user error.
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
 import warnings

@@ -14,7 +14,6 @@ import sys
 import xml.etree.ElementTree as ET
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from apextrack import report

@@ -172,6 +172,6 @@ def test_plain_zarr_arrays(tmp_path):
     assert st.axes == "TCYX" and st.n_channels == 3
     assert np.array_equal(st.frame(1, 2), b[1, :, :, 2].astype(np.float32))
     # an array that does not say its axes is refused with a hint
-    c = zarr.create_array(str(tmp_path / "bare.zarr"), shape=(2, 8, 8), dtype="u2")
+    zarr.create_array(str(tmp_path / "bare.zarr"), shape=(2, 8, 8), dtype="u2")
     with pytest.raises(MetadataError, match="does not say its axes"):
         read_stack(tmp_path / "bare.zarr")

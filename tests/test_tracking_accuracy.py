@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from apextrack.model import history_from_births, make_synthetic_stack
+from apextrack.model import make_synthetic_stack
 from apextrack.pipeline import analyse
 from apextrack.scoring import DEFAULT_GATE_UM, match_tracks, score_tracks
 from apextrack.stack import from_array

@@ -1,0 +1,209 @@
+"""The image stage: per timepoint, the dome surface, the top view, the apex region, the
+detections, the dome fit and the registration — streamed one timepoint at a time.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from .detect import detect_blobs, detections_to_um, scales_px
+from .settings import Settings
+from .stack import Stack
+
+
+def progress_over(iterable, total: int, desc: str, enabled):
+    """``iterable`` with progress shown: a tqdm bar on stderr (``enabled=True``), a callback
+    ``enabled(done, total, stage)`` (e.g. the viewer's), or nothing."""
+    if not enabled:
+        return iterable
+    if callable(enabled):  # a callback progress(done, total, stage), e.g. from the viewer
+        def _report():
+            for i, item in enumerate(iterable):
+                enabled(i, total, desc)
+                yield item
+            enabled(total, total, desc)
+
+        return _report()
+    from tqdm.auto import tqdm
+
+    return tqdm(iterable, total=total, desc=desc, unit="frame", file=sys.stderr, leave=False,
+                dynamic_ncols=True)
+
+
+class TopViewWriter:
+    """Writes the top view of every frame into an ImageJ ``TYX`` float32 TIFF, one frame at a time.
+
+    The file (header and the full frame layout) is created first; each frame is then written at
+    its offset, so no more than one frame is ever held in memory.
+    """
+
+    def __init__(self, path: Path, stack: Stack):
+        import tifffile
+
+        ny, nx = stack.shape_yx
+        px, py = stack.pixel_size_um[0], stack.pixel_size_um[1]
+        mm = tifffile.memmap(path, shape=(stack.n_frames, ny, nx), dtype=np.float32, imagej=True,
+                             resolution=(1.0 / px, 1.0 / py),
+                             metadata={"axes": "TYX", "unit": "um", "finterval": stack.interval_h * 3600.0})
+        self.offset, self.dtype, self.frame_bytes = int(mm.offset), mm.dtype, ny * nx * mm.dtype.itemsize
+        self.shape_yx = (ny, nx)
+        del mm
+        self._file = open(path, "r+b")
+
+    def write(self, t: int, view: np.ndarray) -> None:
+        if view.shape != self.shape_yx:
+            raise ValueError(f"top view of frame {t} has shape {view.shape}, expected {self.shape_yx}")
+        self._file.seek(self.offset + t * self.frame_bytes)
+        self._file.write(np.ascontiguousarray(view, dtype=self.dtype).tobytes())
+
+    def close(self) -> None:
+        if not self._file.closed:
+            self._file.close()
+
+
+def image_stage(stack: Stack, s: Settings, progress: bool = True,
+                on_frame: Callable[[int, np.ndarray], None] | None = None,
+                extra: dict | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Project, register, fit the dome and detect primordia frame by frame (streaming).
+
+    Per frame: the dome surface height map (membrane channel when given, else the reporter;
+    3D stacks), the top view (``max`` or ``surface`` shell projection), the apex region, the
+    detections (2D on the top view, or 3D with ``detect_3d``), the tilted-paraboloid fit of the
+    dome (summit, curvature, tilt), and the registration to the previous frame
+    (:class:`apextrack.register.Registrar`). Registration is applied to coordinates: ``x_um``,
+    ``y_um`` of detections and every centre estimate are in the frame of reference of the
+    first frame; ``x_px``/``y_px`` stay the pixel positions in the frame's own top view.
+
+    Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame with
+    the top view resampled into the first frame's frame of reference (e.g. to write the top
+    views), so that no more than one frame is held in memory. When
+    ``extra`` is a dict it receives the ``registration`` table.
+    """
+    from .apex import _tilt_vector, dome_is_plausible, fit_dome
+    from .detect import apex_region, detect_blobs_3d
+    from .projection import max_projection, shell_projection, surface_height
+    from .register import Registrar
+
+    px = stack.pixel_size_um[0]
+    dz = stack.pixel_size_um[2] if stack.has_z else math.nan
+    ny, nx = stack.shape_yx
+    if s.centre_um is not None:
+        cx, cy = s.centre_um
+        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
+            from .errors import SettingsError
+
+            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
+                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
+                                "give --centre X,Y in µm inside the image")
+    if s.membrane_channel is not None:
+        stack.channel_index(s.membrane_channel)  # fail early on a bad channel
+    sigmas = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, px, s.n_scales)
+    reg = Registrar((ny, nx), px, match_tol_px=max(s.link_search_um / px, 3.0), enabled=bool(s.register))
+    det_parts, centre_rows, blank = [], [], []
+    times = stack.times_h()
+    side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
+    dome_prev = None
+    for t in progress_over(range(stack.n_frames), stack.n_frames, "frames", progress):
+        # the volume stays in the stack's dtype: projections and the height map's binning
+        # read it as it is, nothing converts it whole to float
+        vol = stack.frame(t, s.channel, native=True)
+        mip = max_projection(vol)  # float32
+        is_blank = bool(vol.size) and float(mip.min()) == float(mip.max()) and float(vol.min()) == float(mip.max())
+        if is_blank:
+            blank.append(t)
+        hm = None
+        if vol.ndim == 3 and not is_blank:
+            surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel, native=True)
+            hm = surface_height(surf, dz, px, up=side)
+            if isinstance(side, str) and side == "auto":
+                side = hm.up  # decided once, from the first frame with signal
+        if s.projection == "surface" and hm is not None:
+            view = shell_projection(vol, hm, dz, s.shell_depth_um)
+        else:
+            view = mip
+        rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
+        if s.detect_3d and vol.ndim == 3:
+            blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
+            if not blobs.empty:
+                inside = np.hypot(blobs["x_px"] - rx, blobs["y_px"] - ry) <= s.apex_region_factor * rr
+                blobs = blobs[inside].reset_index(drop=True)
+                blobs["integrated_intensity"] = np.nan
+        else:
+            blobs = detect_blobs(view, sigmas, min_snr=s.min_snr, region=(rx, ry, rr),
+                                 region_factor=s.apex_region_factor)
+        det = detections_to_um(blobs, t, float(times[t]), px)
+        dome = None
+        if hm is not None:
+            hx, hy, hz = hm.points_px()
+            if s.membrane_channel is None and len(blobs):
+                # primordia bulge out of the reporter's surface: leave their cells out of the fit
+                from scipy.spatial import cKDTree
+
+                dist, idx = cKDTree(blobs[["x_px", "y_px"]].to_numpy(float)).query(np.column_stack([hx, hy]))
+                far = dist > 1.5 * blobs["radius_px"].to_numpy(float)[idx]
+                hx, hy, hz = hx[far], hy[far], hz[far]
+            dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=dome_prev, robust_um=max(0.5, 0.25 * dz))
+            if not dome_is_plausible(dome, (nx * px, ny * px)):
+                dome = None  # no summit found (a plane, or a summit outside the field)
+            dome_prev = dome if dome is not None else dome_prev
+            if "z_px" in det.columns:
+                det["z_um"] = det.pop("z_px").to_numpy(float) * dz
+            else:
+                det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+        apex_px = (dome["x_um"] / px, dome["y_um"] / px) if dome is not None else (rx, ry)
+        reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
+        if on_frame is not None:
+            # the top view resampled into the first frame's frame of reference: it lines up
+            # with the registered coordinates of every table
+            on_frame(t, reg.warp_to_reference(view))
+        # coordinates into the first frame's frame of reference
+        xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+        det["x_um"], det["y_um"] = xr * px, yr * px
+        vx, vy = reg.to_reference(rx, ry)
+        crow = {"frame": t, "time_h": float(times[t]), "view_x_um": float(vx) * px, "view_y_um": float(vy) * px,
+                "region_radius_um": rr * px}
+        if dome is not None:
+            sx, sy = reg.to_reference(dome["x_um"] / px, dome["y_um"] / px)
+            a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
+            crow.update({"dome_x_um": float(sx) * px, "dome_y_um": float(sy) * px, "dome_z_um": dome["z_um"],
+                         "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
+                         "_ax": a[0], "_ay": a[1], "_rot": reg.current_rotation_deg})
+        centre_rows.append(crow)
+        det_parts.append(det)
+    centres = pd.DataFrame(centre_rows)
+    if "_ax" in centres.columns:
+        # the tilt is a property of the specimen: a running median over 5 frames steadies it;
+        # directions are turned into the first frame's orientation
+        rot = np.radians(centres["_rot"].to_numpy(float))
+        ax, ay = centres["_ax"].to_numpy(float), centres["_ay"].to_numpy(float)
+        c, sn = np.cos(rot), np.sin(rot)
+        # inverse of the display-counter-clockwise rotation applied to image (x, y) vectors
+        bx, by = c * ax - sn * ay, sn * ax + c * ay
+        bx = pd.Series(bx).rolling(5, center=True, min_periods=1).median().to_numpy()
+        by = pd.Series(by).rolling(5, center=True, min_periods=1).median().to_numpy()
+        sb = np.clip(np.hypot(bx, by), 0, 0.99)
+        centres["measured_tilt_deg"] = np.degrees(np.arcsin(sb))
+        centres["tilt_deg"] = centres["measured_tilt_deg"] if s.tilt_correction else 0.0
+        centres["tilt_direction_deg"] = np.mod(np.degrees(np.arctan2(-by, bx)), 360.0)
+        centres = centres.drop(columns=["_ax", "_ay", "_rot"])
+    if s.centre_um is not None:
+        centres["x_um"], centres["y_um"], centres["method"] = float(s.centre_um[0]), float(s.centre_um[1]), "user"
+    else:
+        use_dome = "dome_x_um" in centres.columns
+        centres["x_um"] = centres["dome_x_um"].fillna(centres["view_x_um"]) if use_dome else centres["view_x_um"]
+        centres["y_um"] = centres["dome_y_um"].fillna(centres["view_y_um"]) if use_dome else centres["view_y_um"]
+        centres["method"] = "dome"
+    first = ["frame", "time_h", "x_um", "y_um", "method"]
+    centres = centres[first + [c for c in centres.columns if c not in first]]
+    centres.attrs["blank_frames"] = blank  # frames whose pixels all hold one value
+    if extra is not None:
+        extra["registration"] = reg.table()
+    detections = pd.concat(det_parts, ignore_index=True) if det_parts else pd.DataFrame()
+    detections.insert(0, "detection_id", np.arange(len(detections), dtype=np.int64))
+    return detections, centres
