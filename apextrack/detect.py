@@ -40,6 +40,7 @@ radius = √3·σ in 3D).
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -132,18 +133,32 @@ def log_stack(image: np.ndarray, sigmas, factor: int | None = None) -> tuple[int
     my, mx = py // f, px // f
     if f > 1:
         spec = np.concatenate([spec[: my // 2, : mx // 2 + 1], spec[py - my // 2:, : mx // 2 + 1]])
-    wy = (2 * np.pi * sfft.fftfreq(my, d=f)).astype(np.float32)
-    wx = (2 * np.pi * sfft.rfftfreq(mx, d=f)).astype(np.float32)
-    w2 = wy[:, None] ** 2 + wx[None, :] ** 2
     oy, ox = m // f, m // f
     cy, cx = -(-ny // f), -(-nx // f)
     cube = np.empty((len(sig), cy, cx), np.float32)
-    norm = np.float32(1.0 / (f * f))
-    for k, s in enumerate(sig):
-        sw = np.float32(s * s) * w2
-        r = sfft.irfft2(spec * (norm * sw * np.exp(-0.5 * sw)), s=(my, mx))
+    for k, h in enumerate(_log_transfer(my, mx, f, tuple(float(v) for v in sig))):
+        r = sfft.irfft2(spec * h, s=(my, mx))
         cube[k] = r[oy:oy + cy, ox:ox + cx]
     return f, cube
+
+
+@functools.lru_cache(maxsize=8)
+def _log_transfer(my: int, mx: int, f: int, sigmas: tuple) -> tuple:
+    """Transfer functions of ``-σ²∇²G_σ`` on the half spectrum of an ``my × mx`` grid of spacing
+    ``f`` (float32, read-only; cached, since every frame of a stack has the same size)."""
+    from scipy import fft as sfft
+
+    wy = (2 * np.pi * sfft.fftfreq(my, d=f)).astype(np.float32)
+    wx = (2 * np.pi * sfft.rfftfreq(mx, d=f)).astype(np.float32)
+    w2 = wy[:, None] ** 2 + wx[None, :] ** 2
+    norm = np.float32(1.0 / (f * f))
+    out = []
+    for s in sigmas:
+        sw = np.float32(s * s) * w2
+        h = norm * sw * np.exp(-0.5 * sw)
+        h.setflags(write=False)
+        out.append(h)
+    return tuple(out)
 
 
 def pyramid_log(image: np.ndarray, sigmas) -> list[tuple[int, np.ndarray]]:
@@ -278,7 +293,8 @@ def _ring_stats(img: np.ndarray, ys: np.ndarray, xs: np.ndarray, radii: np.ndarr
     ny, nx = img.shape
     n = len(ys)
     bgs, noises, counts = np.full(n, np.nan), np.full(n, np.nan), np.zeros(n, int)
-    sizes = np.array([6, 12, 24, 48, 96, 192])
+    # windows just large enough for the annulus (a few sizes, so that blobs share a batch)
+    sizes = np.array([6, 8, 10, 12, 14, 16, 20, 24, 28, 32, 40, 48, 56, 64, 80, 96, 128, 192])
     want = np.ceil(3 * radii).astype(int) + 1
     halves = np.where(want <= sizes[-1], sizes[np.searchsorted(sizes, np.minimum(want, sizes[-1]))], want)
     for h in np.unique(halves):

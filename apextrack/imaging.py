@@ -67,6 +67,30 @@ class TopViewWriter:
             self._file.close()
 
 
+_DOME_COLUMNS = ["dome_x_um", "dome_y_um", "dome_z_um", "curvature_um", "dome_rms_um", "_bx", "_by"]
+
+
+def _fill_domes(centres: pd.DataFrame) -> None:
+    """Give the frames whose dome was not fitted (``_fill``) the fitted domes interpolated
+    linearly in frame number (frame-0 frame of reference; held beyond the first and last fit)."""
+    fitted = centres["dome_fitted"].to_numpy(bool)
+    fill = centres["_fill"].to_numpy(bool) & ~fitted
+    if not fill.any() or not fitted.any():
+        return
+    fr = centres["frame"].to_numpy(float)
+    # the tilt is a property of the specimen: a running median over 5 fits steadies it before
+    # it is spread to the frames between (with a fit on every frame: the 5-frame median below)
+    for col in ("_bx", "_by"):
+        vals = centres.loc[fitted, col]
+        centres.loc[fitted, col] = vals.rolling(5, center=True, min_periods=1).median().to_numpy()
+    for col in _DOME_COLUMNS:
+        vals = centres[col].to_numpy(float)
+        centres.loc[fill, col] = np.interp(fr[fill], fr[fitted], vals[fitted])
+    # the side the dome faces: that of the nearest earlier fit (else the first)
+    up = centres["dome_up"].where(centres["dome_fitted"]).ffill().bfill()
+    centres.loc[fill, "dome_up"] = up[fill]
+
+
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 on_frame: Callable[[int, np.ndarray], None] | None = None,
                 extra: dict | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -109,6 +133,14 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     times = stack.times_h()
     side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
     dome_prev = None
+    # the dome (height map + paraboloid) is a property of the specimen that changes slowly: it is
+    # fitted on every k-th frame; frames between take the fitted domes
+    # interpolated in the registered frame of reference, and the z of their detections from the
+    # last height map, read where each detection lies in that map's frame
+    every = max(1, int(s.dome_every_frames))
+    last_fit = None          # frame of the last successful dome fit
+    hm_last, hm_matrix = None, None   # last height map and its frame's registration (frame 0 → it)
+    dome_ref = None          # last fitted summit in frame-0 pixels
     for t in progress_over(range(stack.n_frames), stack.n_frames, "frames", progress):
         # the volume stays in the stack's dtype: projections and the height map's binning
         # read it as it is, nothing converts it whole to float
@@ -118,7 +150,9 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
         if is_blank:
             blank.append(t)
         hm = None
-        if vol.ndim == 3 and not is_blank:
+        fit_now = (vol.ndim == 3 and not is_blank
+                   and (last_fit is None or t - last_fit >= every))
+        if fit_now or (vol.ndim == 3 and not is_blank and s.projection == "surface"):
             surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel, native=True)
             hm = surface_height(surf, dz, px, up=side)
             if isinstance(side, str) and side == "auto":
@@ -139,7 +173,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                                  region_factor=s.apex_region_factor)
         det = detections_to_um(blobs, t, float(times[t]), px)
         dome = None
-        if hm is not None:
+        if hm is not None and fit_now:
             hx, hy, hz = hm.points_px()
             if s.membrane_channel is None and len(blobs):
                 # primordia bulge out of the reporter's surface: leave their cells out of the fit
@@ -152,12 +186,27 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             if not dome_is_plausible(dome, (nx * px, ny * px)):
                 dome = None  # no summit found (a plane, or a summit outside the field)
             dome_prev = dome if dome is not None else dome_prev
-            if "z_px" in det.columns:
-                det["z_um"] = det.pop("z_px").to_numpy(float) * dz
-            else:
-                det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-        apex_px = (dome["x_um"] / px, dome["y_um"] / px) if dome is not None else (rx, ry)
+            if dome is not None:
+                last_fit = t
+        if dome is not None:
+            apex_px = (dome["x_um"] / px, dome["y_um"] / px)
+        elif dome_ref is not None and vol.ndim == 3 and not is_blank:
+            # the last fitted summit, carried into this frame (by the previous frame's registration)
+            apex_px = tuple(float(v) for v in reg.from_reference(*dome_ref))
+        else:
+            apex_px = (rx, ry)
         reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
+        if "z_px" in det.columns:
+            det["z_um"] = det.pop("z_px").to_numpy(float) * dz
+        elif hm is not None:
+            det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+        elif hm_last is not None and vol.ndim == 3 and not is_blank:
+            # the last height map, read where each detection lies in that map's own frame
+            xr0, yr0 = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+            m = hm_matrix
+            det["z_um"] = hm_last.at(m[0, 0] * xr0 + m[0, 1] * yr0 + m[0, 2], m[1, 0] * xr0 + m[1, 1] * yr0 + m[1, 2])
+        if hm is not None:
+            hm_last, hm_matrix = hm, reg.current_matrix
         if on_frame is not None:
             # the top view resampled into the first frame's frame of reference: it lines up
             # with the registered coordinates of every table
@@ -170,28 +219,34 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 "region_radius_um": rr * px}
         if dome is not None:
             sx, sy = reg.to_reference(dome["x_um"] / px, dome["y_um"] / px)
+            dome_ref = (float(sx), float(sy))
             a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
+            # the tilt vector turned into the first frame's orientation (inverse of the
+            # display-counter-clockwise rotation applied to image (x, y) vectors)
+            rot = math.radians(reg.current_rotation_deg)
+            c, sn = math.cos(rot), math.sin(rot)
             crow.update({"dome_x_um": float(sx) * px, "dome_y_um": float(sy) * px, "dome_z_um": dome["z_um"],
                          "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
-                         "_ax": a[0], "_ay": a[1], "_rot": reg.current_rotation_deg})
+                         "_bx": c * a[0] - sn * a[1], "_by": sn * a[0] + c * a[1]})
+        crow["dome_fitted"] = dome is not None
+        crow["_fill"] = bool(vol.ndim == 3 and not is_blank and not fit_now)
         centre_rows.append(crow)
         det_parts.append(det)
     centres = pd.DataFrame(centre_rows)
-    if "_ax" in centres.columns:
+    if "_bx" in centres.columns:
+        _fill_domes(centres)
+    centres = centres.drop(columns=["_fill"])
+    if "_bx" in centres.columns:
         # the tilt is a property of the specimen: a running median over 5 frames steadies it;
-        # directions are turned into the first frame's orientation
-        rot = np.radians(centres["_rot"].to_numpy(float))
-        ax, ay = centres["_ax"].to_numpy(float), centres["_ay"].to_numpy(float)
-        c, sn = np.cos(rot), np.sin(rot)
-        # inverse of the display-counter-clockwise rotation applied to image (x, y) vectors
-        bx, by = c * ax - sn * ay, sn * ax + c * ay
+        # directions are in the first frame's orientation
+        bx, by = centres["_bx"].to_numpy(float), centres["_by"].to_numpy(float)
         bx = pd.Series(bx).rolling(5, center=True, min_periods=1).median().to_numpy()
         by = pd.Series(by).rolling(5, center=True, min_periods=1).median().to_numpy()
         sb = np.clip(np.hypot(bx, by), 0, 0.99)
         centres["measured_tilt_deg"] = np.degrees(np.arcsin(sb))
         centres["tilt_deg"] = centres["measured_tilt_deg"] if s.tilt_correction else 0.0
         centres["tilt_direction_deg"] = np.mod(np.degrees(np.arctan2(-by, bx)), 360.0)
-        centres = centres.drop(columns=["_ax", "_ay", "_rot"])
+        centres = centres.drop(columns=["_bx", "_by"])
     if s.centre_um is not None:
         centres["x_um"], centres["y_um"], centres["method"] = float(s.centre_um[0]), float(s.centre_um[1]), "user"
     else:

@@ -114,6 +114,14 @@ def _mutual_nn(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np
 
     if len(a) == 0 or len(b) == 0:
         return np.zeros(0, int), np.zeros(0, int)
+    if len(a) * len(b) <= 4096:
+        # a few dozen primordia: the full distance matrix is cheaper than two k-d trees
+        d = np.hypot(a[:, None, 0] - b[None, :, 0], a[:, None, 1] - b[None, :, 1])
+        iab, iba = np.argmin(d, axis=1), np.argmin(d, axis=0)
+        ia = np.nonzero(d[np.arange(len(a)), iab] < tol)[0]
+        ib = iab[ia]
+        ok = (iba[ib] == ia) & (d[ia, ib] < tol)
+        return ia[ok], ib[ok]
     ta, tb = cKDTree(a), cKDTree(b)
     dab, iab = tb.query(a, distance_upper_bound=tol)
     dba, iba = ta.query(b, distance_upper_bound=tol)
@@ -211,6 +219,7 @@ class Registrar:
         self._cum = np.eye(3)       # frame t → frame 0 is inv(self._cum)
         self._growth = 1.0          # last scale between frames measured from the primordia
         self._ref_cum = np.eye(3)
+        self._last_shift = None     # last shift measured from the primordia (pixels)
 
     def update(self, t: int, view: np.ndarray, points_xy_px: np.ndarray, apex_xy_px=None) -> dict:
         """Register frame ``t`` to the last registered frame; returns its registration row.
@@ -237,23 +246,25 @@ class Registrar:
                 # the next frame is compared with this one (the nearer in time), taken as unmoved
                 self._store(view, pts, apex)
         else:
-            guess = phase_shift(self._prev_view, view)
-            fit = match_points(self._prev_pts, pts, guess, self.match_tol_px, self.max_rotation_deg,
-                               pivot=self._prev_centre)
-            shift = None
-            if fit is not None:
-                r, s, tvec = fit["R"], fit["scale"], fit["T"]
-                phi = math.degrees(math.atan2(r[0, 1], r[0, 0]))
-                f = self.field_centre
-                shift = tvec - (np.eye(2) - r) @ f - (1.0 - s) * (r @ self._prev_centre)
-                # a specimen does not jump farther than a primordium may move between frames:
-                # a larger step means the few matched primordia did not constrain the fit
-                if float(np.hypot(*shift)) > self.match_tol_px:
+            shift, fit, phi, s, guess = None, None, 0.0, 1.0, None
+            if self._last_shift is not None:
+                # first the primordia alone, with the last measured shift as the guess (drift
+                # changes slowly); the phase correlation is computed only when this fails
+                fit = match_points(self._prev_pts, pts, self._last_shift, self.match_tol_px,
+                                   self.max_rotation_deg, pivot=self._prev_centre)
+                shift, phi, s = self._checked_shift(fit)
+                # most primordia of both frames must be matched for the guess to be trusted
+                if shift is not None and fit["n"] < max(self.min_points, 0.6 * min(len(self._prev_pts), len(pts))):
                     shift = None
-                # matched primordia that a similarity leaves far apart were matched wrongly
-                elif fit["rms"] > max(1.0, 0.15 * self.match_tol_px):
-                    shift = None
+            if shift is None:
+                guess = phase_shift(self._prev_view, view)
+                fit = match_points(self._prev_pts, pts, guess, self.match_tol_px, self.max_rotation_deg,
+                                   pivot=self._prev_centre)
+                shift, phi, s = self._checked_shift(fit)
+            f = self.field_centre
+            self._last_shift = None
             if shift is not None:
+                self._last_shift = np.asarray(shift, float)
                 step = rigid_matrix(phi, shift, f)
                 method, n, rms, scale = "primordia", fit["n"], fit["rms"] * px, s
                 self._growth = float(s)
@@ -281,6 +292,24 @@ class Registrar:
                "scale": float(scale), "n_matched": int(n), "rms_um": float(rms), "method": method}
         self.rows.append(row)
         return row
+
+    def _checked_shift(self, fit):
+        """Rigid shift (pixels), rotation (deg) and scale of a :func:`match_points` fit, or
+        ``(None, 0, 1)`` when the fit fails the plausibility guards."""
+        if fit is None:
+            return None, 0.0, 1.0
+        r, s, tvec = fit["R"], fit["scale"], fit["T"]
+        phi = math.degrees(math.atan2(r[0, 1], r[0, 0]))
+        f = self.field_centre
+        shift = tvec - (np.eye(2) - r) @ f - (1.0 - s) * (r @ self._prev_centre)
+        # a specimen does not jump farther than a primordium may move between frames:
+        # a larger step means the few matched primordia did not constrain the fit
+        if float(np.hypot(*shift)) > self.match_tol_px:
+            return None, 0.0, 1.0
+        # matched primordia that a similarity leaves far apart were matched wrongly
+        if fit["rms"] > max(1.0, 0.15 * self.match_tol_px):
+            return None, 0.0, 1.0
+        return shift, phi, s
 
     def _explains(self, pts: np.ndarray, shift) -> bool:
         """Do the detections follow the previous frame's better with ``shift`` than without?
@@ -317,6 +346,19 @@ class Registrar:
         x = np.asarray(x_px, float)
         y = np.asarray(y_px, float)
         return inv[0, 0] * x + inv[0, 1] * y + inv[0, 2], inv[1, 0] * x + inv[1, 1] * y + inv[1, 2]
+
+    def from_reference(self, x_px, y_px) -> tuple[np.ndarray, np.ndarray]:
+        """Map frame-0 pixel positions into the pixels of the frame last passed to :meth:`update`
+        (the inverse of :meth:`to_reference`; the identity before the first frame)."""
+        m = getattr(self, "_current", np.eye(3))
+        x = np.asarray(x_px, float)
+        y = np.asarray(y_px, float)
+        return m[0, 0] * x + m[0, 1] * y + m[0, 2], m[1, 0] * x + m[1, 1] * y + m[1, 2]
+
+    @property
+    def current_matrix(self) -> np.ndarray:
+        """3×3 matrix of the frame last passed to :meth:`update`: frame-0 ``(x, y, 1)`` → its own."""
+        return np.array(getattr(self, "_current", np.eye(3)), float)
 
     def warp_to_reference(self, view: np.ndarray, order: int = 1) -> np.ndarray:
         """Resample the frame last passed to :meth:`update` into frame 0's frame of reference,

@@ -39,6 +39,7 @@ class Settings:
     # --- image stage -------------------------------------------------------------------------
     register: bool = _p(True, "", "correct drift and rotation between timepoints")
     projection: str = _p("max", "", "top view of each 3D timepoint: 'max' (maximum) or 'surface' (shell below the dome surface)", choices=["max", "surface"])
+    dome_every_frames: int = _p(1, "frames", "fit the dome surface (height map and paraboloid) on every k-th frame of a 3D stack; the frames between take the fitted domes interpolated in the registered frame of reference, and the z of their detections from the last height map (1: every frame; larger k saves time on thick, clean stacks, but on thin or noisy ones every fit's error is carried to the frames between)", low=1, high=1000)
     shell_depth_um: float = _p(6.0, "µm", "depth of the shell below the dome surface (surface projection)", low=0.0)
     centre_um: tuple[float, float] | None = _p(None, "µm", "apex centre (x, y) fixed by the user instead of fitted", kind="pair")
     centre_method: str = _p("auto", "", "apex centre: 'dome' (summit of the paraboloid fitted to the dome surface; centre of the dome in the top view for 2D stacks), 'view' (centre of the dome in the top view), 'motion' (where the primordia's outward motion starts), 'pattern' (the centre that makes successive azimuths and ln r most regular), 'auto' (motion when enough tracks, else pattern, else dome)", choices=["auto", "dome", "view", "motion", "pattern"])

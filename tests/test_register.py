@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy.ndimage import shift as ndi_shift
 
 from apextrack.detect import detect_blobs, scales_px
 from apextrack.model import make_synthetic_stack
@@ -90,3 +91,40 @@ def test_switched_off_and_skipped_frames():
     pts = np.array([[10.0, 10.0], [30.0, 12.0], [20.0, 40.0], [45.0, 45.0]])
     reg.update(0, np.zeros((64, 64)), pts)
     assert reg.update(1, np.zeros((64, 64)), pts[:1])["method"].startswith("skipped")
+
+
+def test_sudden_jump_falls_back_to_phase_correlation(monkeypatch):
+    # steady drift is matched from the primordia with the last shift as the guess (no phase
+    # correlation); a jump the guess cannot explain (7.5 px against a guess of about −1 px, more
+    # than the 8 px matching tolerance away) is found through the phase-correlation fallback.
+    # Expected shifts are the ones applied here (no source needed).
+    import apextrack.register as register
+
+    calls = []
+    real = register.phase_shift
+    monkeypatch.setattr(register, "phase_shift", lambda a, b, *k: calls.append(1) or real(a, b, *k))
+    s = make_synthetic_stack(n_frames=3, shape_zyx=(6, 96, 96), drift_um_per_frame=(-0.6, -0.4, 0), seed=5)
+    px = s.pixel_size_um
+    reg = Registrar(s.data.shape[-2:], px)
+    sig = scales_px(6, 20, px, 6)
+    views, dets = [], []
+    for t in range(3):
+        views.append(max_projection(s.data[t].astype(np.float32)))
+        dets.append(detect_blobs(views[-1], sig)[["x_px", "y_px"]].to_numpy())
+    jump = 7.5
+    views.append(ndi_shift(views[2], (0.0, jump), mode="nearest"))
+    dets.append(dets[2] + np.array([jump, 0.0]))
+    c = s.centre_um.iloc[0]
+    n_calls = []
+    for t in range(4):
+        reg.update(t, views[t], dets[t], (c.x_um / px, c.y_um / px))
+        n_calls.append(len(calls))
+    table = reg.table()
+    assert list(table.method[1:]) == ["primordia"] * 3
+    assert n_calls == [0, 1, 1, 2]   # correlation for the first pair and for the jump only
+    assert abs(table.shift_x_um[2] + 0.6) / px < 0.5 and abs(table.shift_y_um[2] + 0.4) / px < 0.5
+    assert abs(table.shift_x_um[3] / px - jump) < 0.1 and abs(table.shift_y_um[3] / px) < 0.1
+    # frame-0 positions mapped into the last frame and back again are unchanged
+    x0, y0 = np.array([12.0, 50.5]), np.array([30.0, 70.25])
+    xr, yr = reg.to_reference(*reg.from_reference(x0, y0))
+    assert np.allclose(xr, x0) and np.allclose(yr, y0)
