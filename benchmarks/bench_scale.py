@@ -198,7 +198,9 @@ def main() -> None:
     for n in args.frames:
         p = stack_path(n)
         with tempfile.TemporaryDirectory(prefix="bench_") as tmp:
-            rp = _run_child("--child-read", str(p))
+            # the first read may come from disk (a freshly written file); both runs read from the
+            # page cache, so the faster of two reads is the floor
+            rp = min((_run_child("--child-read", str(p)) for _ in range(2)), key=lambda r: r["wall_s"])
             an = _run_child("--child-analyse", str(p), str(Path(tmp) / "res"))
         row = {"T": n, "stack_gb": p.stat().st_size / 1e9, "read_project_s": rp["wall_s"], "analyse_s": an["wall_s"],
                "ratio": an["wall_s"] / rp["wall_s"], "peak_rss_mb": an["peak_rss_bytes"] / 1e6,
