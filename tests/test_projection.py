@@ -69,3 +69,20 @@ def test_height_map_and_shell_are_the_same_from_the_stacks_own_dtype():
     np.testing.assert_array_equal(shell_projection(raw, a, 1.5, 6.0), shell_projection(flt, b, 1.5, 6.0))
     assert max_projection(raw).dtype == np.float32
     np.testing.assert_array_equal(max_projection(raw), flt.max(axis=0))
+
+
+@pytest.mark.parametrize("b", [2, 3, 4, 6])
+def test_lateral_binning_is_the_exact_block_mean_of_16_bit_data(b):
+    # common practice, no source: the b × b block mean, checked against numpy's float64 mean
+    # of the reshaped blocks; values up to 65535 (the 32-bit pair sums must not overflow)
+    from apextrack.projection import _bin
+
+    rng = np.random.default_rng(3)
+    v = rng.integers(0, 65536, size=(3, 4 * b + 1, 5 * b + 3)).astype(np.uint16)
+    v[0] = 65535
+    nz, ny, nx = v.shape
+    my, mx = (ny // b) * b, (nx // b) * b
+    ref = v[:, :my, :mx].astype(np.float64).reshape(nz, my // b, b, mx // b, b).mean(axis=(2, 4))
+    np.testing.assert_allclose(_bin(v, b), ref, rtol=1e-6)
+    np.testing.assert_array_equal(_bin(v, b), _bin(v.astype(np.int32), b))
+
