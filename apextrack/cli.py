@@ -248,7 +248,6 @@ def _run_fit(args) -> int:
     return 0
 
 
-#: Sub-command builders, in the order they are listed by --help.
 # ----------------------------------------------------------------------------------------------
 # view
 # ----------------------------------------------------------------------------------------------
@@ -308,6 +307,7 @@ def _run_score(args) -> int:
     return 0
 
 
+#: Sub-command builders, in the order they are listed by --help.
 COMMANDS = [_add_analyse, _add_settings, _add_batch, _add_compare, _add_score, _add_simulate, _add_fit,
             _add_view]
 

@@ -16,7 +16,7 @@ from typing import Any
 
 from .errors import SettingsError
 
-GOLDEN_ANGLE_DEG = 360.0 * (2.0 - (1.0 + math.sqrt(5.0)) / 2.0)
+from .constants import GOLDEN_ANGLE_DEG  # the default expected angle
 
 
 def _p(default, unit: str, meaning: str, *, low=None, high=None, choices=None, kind=None):

@@ -30,7 +30,7 @@ import pandas as pd
 from ..errors import SettingsError
 
 #: Golden angle 360·(2 − φ) in degrees.
-GOLDEN_ANGLE_DEG = 360.0 * (2.0 - (1.0 + math.sqrt(5.0)) / 2.0)
+from ..constants import GOLDEN_ANGLE_DEG  # re-exported
 
 HISTORY_COLUMNS = ["birth_rank", "primordium", "birth_time_h", "theta_deg", "co_initiated", "group"]
 

@@ -34,7 +34,7 @@ from ..errors import SettingsError
 from .growth import history_from_births
 
 #: Limit angle of the ⟨1, t⟩ sequence 1, t, t+1, 2t+1, … : 360 / (t + 1/φ).
-PHI = (1.0 + math.sqrt(5.0)) / 2.0
+from ..constants import PHI
 
 
 def limit_angle_deg(t: int) -> float:

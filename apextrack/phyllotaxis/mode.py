@@ -28,8 +28,6 @@ from .. import circular as circ
 
 __all__ = ["classify_mode", "nodes_from_co_initiation"]
 
-PHI = (1.0 + math.sqrt(5.0)) / 2.0
-GOLDEN = 360.0 * (2.0 - PHI)
 
 
 def nodes_from_co_initiation(co_initiated_pairs) -> list[int]:

@@ -25,8 +25,7 @@ from .. import circular as circ
 __all__ = ["lattice_contact_pair", "contact_parastichies", "classify_pair", "limit_angle",
            "parastichy_table", "PHI", "GOLDEN_ANGLE_DEG"]
 
-PHI = (1.0 + math.sqrt(5.0)) / 2.0
-GOLDEN_ANGLE_DEG = 360.0 * (2.0 - PHI)
+from ..constants import GOLDEN_ANGLE_DEG, PHI  # re-exported
 
 
 def _vote(dist2: np.ndarray, dang: np.ndarray, index: np.ndarray, where: np.ndarray) -> dict:

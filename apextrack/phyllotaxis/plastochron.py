@@ -25,7 +25,7 @@ from .. import circular as circ
 __all__ = ["phyllotaxis_index", "emergence_plastochron", "radial_growth_rate", "plastochron_ratio",
            "choose_frame", "growth_plastochron"]
 
-PHI = (1.0 + math.sqrt(5.0)) / 2.0
+from ..constants import PHI
 #: 1 / (2 log10 φ) = 2.39249... (Richards 1951)
 PI_SLOPE = 1.0 / (2.0 * math.log10(PHI))
 
