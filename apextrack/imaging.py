@@ -1,13 +1,24 @@
 """The image stage: per timepoint, the dome surface, the top view, the apex region, the
 detections, the dome fit and the registration — streamed one timepoint at a time.
+
+The stage has two halves. :func:`measure_frame` measures one timepoint on its own (read,
+project, apex region, detect, height map, dome fit): it depends only on the frame, the settings
+and a :class:`StageContext` decided once per stack from its first frame with signal, so frames
+can be measured in any order, in threads (:func:`measure_frames`, ``settings.threads``) or as
+separate dask tasks (:mod:`apextrack.batch`). :func:`image_stage` then puts the measurements
+together in frame order: registration, the z of each detection, the centres. The tables are
+the same whichever way the frames were measured.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import sys
+from collections import deque
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Iterable, Iterator
 
 import numpy as np
 import pandas as pd
@@ -91,27 +102,186 @@ def _fill_domes(centres: pd.DataFrame) -> None:
     centres.loc[fill, "dome_up"] = up[fill]
 
 
+@dataclass
+class StageContext:
+    """What the measurement of every frame of one stack shares, decided once from the stack's
+    first frame with signal (:func:`stage_context`)."""
+
+    sigmas: np.ndarray
+    #: side the dome faces (+1 / −1; "auto" while undecided, e.g. for 2D stacks)
+    side: int | str
+    #: dome fitted on the first frame with signal: the starting point of every other frame's fit
+    dome_init: dict | None
+    #: first frame with signal (the dome is fitted on it and on every ``dome_every_frames``-th after)
+    first: int | None
+
+
+@dataclass
+class FrameMeasure:
+    """The measurements of one timepoint, in its own pixel frame (see :func:`measure_frame`)."""
+
+    t: int
+    ndim: int
+    blank: bool
+    view: np.ndarray
+    region: tuple[float, float, float]
+    blobs: pd.DataFrame
+    height: object | None      # projection.HeightMap, when computed on this frame
+    dome: dict | None          # fitted dome (µm, this frame's pixels × pixel size), if plausible
+    fitted: bool               # the dome fit was due on this frame
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.view.nbytes)
+
+
+def stack_sigmas(stack: Stack, s: Settings) -> np.ndarray:
+    """The detector's Gaussian scales (pixels) for this stack's pixel size."""
+    return scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, stack.pixel_size_um[0], s.n_scales)
+
+
+def measure_frame(stack: Stack, t: int, s: Settings, ctx: StageContext) -> FrameMeasure:
+    """Measure timepoint ``t`` on its own: top view, apex region, detections, and on the frames
+    the dome is due (every ``dome_every_frames``-th from the first with signal) the height map
+    and the dome fit. Safe to call from several threads at once."""
+    from .apex import dome_is_plausible, fit_dome
+    from .detect import apex_region, detect_blobs_3d
+    from .projection import max_projection, shell_projection, surface_height
+
+    px = stack.pixel_size_um[0]
+    dz = stack.pixel_size_um[2] if stack.has_z else math.nan
+    ny, nx = stack.shape_yx
+    sigmas = ctx.sigmas
+    # the volume stays in the stack's dtype: projections and the height map's binning
+    # read it as it is, nothing converts it whole to float
+    vol = stack.frame(t, s.channel, native=True)
+    mip = max_projection(vol)  # float32
+    is_blank = bool(vol.size) and float(mip.min()) == float(mip.max()) and float(vol.min()) == float(mip.max())
+    every = max(1, int(s.dome_every_frames))
+    fit_now = (vol.ndim == 3 and not is_blank and ctx.first is not None and (t - ctx.first) % every == 0)
+    hm = None
+    if fit_now or (vol.ndim == 3 and not is_blank and s.projection == "surface"):
+        surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel, native=True)
+        hm = surface_height(surf, dz, px, up=ctx.side)
+    if s.projection == "surface" and hm is not None:
+        view = shell_projection(vol, hm, dz, s.shell_depth_um)
+    else:
+        view = mip
+    rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
+    if s.detect_3d and vol.ndim == 3:
+        blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
+        if not blobs.empty:
+            inside = np.hypot(blobs["x_px"] - rx, blobs["y_px"] - ry) <= s.apex_region_factor * rr
+            blobs = blobs[inside].reset_index(drop=True)
+            blobs["integrated_intensity"] = np.nan
+    else:
+        blobs = detect_blobs(view, sigmas, min_snr=s.min_snr, region=(rx, ry, rr),
+                             region_factor=s.apex_region_factor)
+    del vol
+    dome = None
+    if hm is not None and fit_now:
+        hx, hy, hz = hm.points_px()
+        if s.membrane_channel is None and len(blobs):
+            # primordia bulge out of the reporter's surface: leave their cells out of the fit
+            from scipy.spatial import cKDTree
+
+            dist, idx = cKDTree(blobs[["x_px", "y_px"]].to_numpy(float)).query(np.column_stack([hx, hy]))
+            far = dist > 1.5 * blobs["radius_px"].to_numpy(float)[idx]
+            hx, hy, hz = hx[far], hy[far], hz[far]
+        dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=ctx.dome_init, robust_um=max(0.5, 0.25 * dz))
+        if not dome_is_plausible(dome, (nx * px, ny * px)):
+            dome = None  # no summit found (a plane, or a summit outside the field)
+    return FrameMeasure(t=t, ndim=3 if stack.has_z else 2, blank=is_blank, view=view, region=(rx, ry, rr),
+                        blobs=blobs, height=hm, dome=dome, fitted=fit_now)
+
+
+def stage_context(stack: Stack, s: Settings) -> tuple[StageContext, dict[int, FrameMeasure]]:
+    """Decide what every frame's measurement shares, from the first frame with signal: the side
+    the dome faces (when ``surface_side`` is ``auto``) and the dome that starts every other
+    frame's fit. Returns the context and the frames measured on the way (the blank frames
+    before, and that first frame), so that they need not be measured again."""
+    side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
+    sigmas = stack_sigmas(stack, s)
+    done: dict[int, FrameMeasure] = {}
+    for t in range(stack.n_frames):
+        m = measure_frame(stack, t, s, StageContext(sigmas, side, None, t))
+        done[t] = m
+        if not m.blank:
+            if m.height is not None and isinstance(side, str):
+                side = m.height.up
+            return StageContext(sigmas, side, m.dome, t), done
+    return StageContext(sigmas, side, None, None), done
+
+
+def _n_threads(requested: int) -> int:
+    if requested and requested > 0:
+        return int(requested)
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterable[int] | None = None,
+                   done: dict[int, FrameMeasure] | None = None, threads: int | None = None) -> Iterator[FrameMeasure]:
+    """The measurements of ``frames`` (default: all), yielded in frame order.
+
+    With more than one thread (``threads``, default ``settings.threads``; 0 = one per core) a
+    few frames ahead are measured in a thread pool; at most ``threads + 1`` frames are in
+    flight, so memory stays bounded. ``done`` holds frames already measured.
+    """
+    frames = list(range(stack.n_frames) if frames is None else frames)
+    done = dict(done or {})
+    n = _n_threads(s.threads if threads is None else threads)
+    if n <= 1 or len(frames) - len(done) <= 1:
+        for t in frames:
+            yield done.pop(t) if t in done else measure_frame(stack, t, s, ctx)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    ex = ThreadPoolExecutor(max_workers=n, thread_name_prefix="apextrack-frame")
+    try:
+        pending: deque = deque()
+        todo = iter(frames)
+
+        def fill():
+            while len(pending) < n:
+                t = next(todo, None)
+                if t is None:
+                    return
+                pending.append(done.pop(t) if t in done else ex.submit(measure_frame, stack, t, s, ctx))
+
+        fill()
+        while pending:
+            item = pending.popleft()
+            fill()
+            yield item if isinstance(item, FrameMeasure) else item.result()
+    finally:
+        ex.shutdown(wait=True, cancel_futures=True)
+
+
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 on_frame: Callable[[int, np.ndarray], None] | None = None,
-                extra: dict | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+                extra: dict | None = None, measures: Iterable[FrameMeasure] | None = None
+                ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Project, register, fit the dome and detect primordia frame by frame (streaming).
 
-    Per frame: the dome surface height map (membrane channel when given, else the reporter;
-    3D stacks), the top view (``max`` or ``surface`` shell projection), the apex region, the
-    detections (2D on the top view, or 3D with ``detect_3d``), the tilted-paraboloid fit of the
-    dome (summit, curvature, tilt), and the registration to the previous frame
+    Per frame (:func:`measure_frame`): the dome surface height map (membrane channel when
+    given, else the reporter; 3D stacks), the top view (``max`` or ``surface`` shell
+    projection), the apex region, the detections (2D on the top view, or 3D with
+    ``detect_3d``) and the tilted-paraboloid fit of the dome (summit, curvature, tilt). Then, in
+    frame order, the registration to the previous frame
     (:class:`apextrack.register.Registrar`). Registration is applied to coordinates: ``x_um``,
     ``y_um`` of detections and every centre estimate are in the frame of reference of the
     first frame; ``x_px``/``y_px`` stay the pixel positions in the frame's own top view.
 
     Returns ``(detections, centres)``; ``on_frame(t, top_view)`` is called for every frame with
     the top view resampled into the first frame's frame of reference (e.g. to write the top
-    views), so that no more than one frame is held in memory. When
-    ``extra`` is a dict it receives the ``registration`` table.
+    views), so that no more than a few frames are held in memory. When ``extra`` is a dict it
+    receives the ``registration`` table. ``measures`` gives the frames' measurements in frame
+    order (e.g. made by dask tasks); by default they are made here (:func:`measure_frames`).
     """
-    from .apex import _tilt_vector, dome_is_plausible, fit_dome
-    from .detect import apex_region, detect_blobs_3d
-    from .projection import max_projection, shell_projection, surface_height
+    from .apex import _tilt_vector
     from .register import Registrar
 
     px = stack.pixel_size_um[0]
@@ -127,70 +297,32 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                                 "give --centre X,Y in µm inside the image")
     if s.membrane_channel is not None:
         stack.channel_index(s.membrane_channel)  # fail early on a bad channel
-    sigmas = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, px, s.n_scales)
     reg = Registrar((ny, nx), px, match_tol_px=max(s.link_search_um / px, 3.0), enabled=bool(s.register))
     det_parts, centre_rows, blank = [], [], []
     times = stack.times_h()
-    side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
-    dome_prev = None
-    # the dome (height map + paraboloid) is a property of the specimen that changes slowly: it is
-    # fitted on every k-th frame; frames between take the fitted domes
-    # interpolated in the registered frame of reference, and the z of their detections from the
-    # last height map, read where each detection lies in that map's frame
-    every = max(1, int(s.dome_every_frames))
-    last_fit = None          # frame of the last successful dome fit
+    if measures is None:
+        ctx, done = stage_context(stack, s)
+        measures = measure_frames(stack, s, ctx, done=done)
+    # the dome (height map + paraboloid) is a property of the specimen that changes slowly: with
+    # ``dome_every_frames`` > 1 it is fitted on every k-th frame; frames between take the fitted
+    # domes interpolated in the registered frame of reference, and the z of their detections
+    # from the last height map, read where each detection lies in that map's frame
     hm_last, hm_matrix = None, None   # last height map and its frame's registration (frame 0 → it)
     dome_ref = None          # last fitted summit in frame-0 pixels
-    for t in progress_over(range(stack.n_frames), stack.n_frames, "frames", progress):
-        # the volume stays in the stack's dtype: projections and the height map's binning
-        # read it as it is, nothing converts it whole to float
-        vol = stack.frame(t, s.channel, native=True)
-        mip = max_projection(vol)  # float32
-        is_blank = bool(vol.size) and float(mip.min()) == float(mip.max()) and float(vol.min()) == float(mip.max())
+    expected = 0
+    for m in progress_over(measures, stack.n_frames, "frames", progress):
+        t = m.t
+        if t != expected:
+            raise RuntimeError(f"frame {t} measured out of order (expected frame {expected})")
+        expected += 1
+        is_blank, view, hm, dome, is3d = m.blank, m.view, m.height, m.dome, m.ndim == 3
         if is_blank:
             blank.append(t)
-        hm = None
-        fit_now = (vol.ndim == 3 and not is_blank
-                   and (last_fit is None or t - last_fit >= every))
-        if fit_now or (vol.ndim == 3 and not is_blank and s.projection == "surface"):
-            surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel, native=True)
-            hm = surface_height(surf, dz, px, up=side)
-            if isinstance(side, str) and side == "auto":
-                side = hm.up  # decided once, from the first frame with signal
-        if s.projection == "surface" and hm is not None:
-            view = shell_projection(vol, hm, dz, s.shell_depth_um)
-        else:
-            view = mip
-        rx, ry, rr = apex_region(view, close_px=2.0 * math.sqrt(2.0) * float(np.max(sigmas)))
-        if s.detect_3d and vol.ndim == 3:
-            blobs = detect_blobs_3d(vol, sigmas, z_ratio=dz / px, min_snr=s.min_snr)
-            if not blobs.empty:
-                inside = np.hypot(blobs["x_px"] - rx, blobs["y_px"] - ry) <= s.apex_region_factor * rr
-                blobs = blobs[inside].reset_index(drop=True)
-                blobs["integrated_intensity"] = np.nan
-        else:
-            blobs = detect_blobs(view, sigmas, min_snr=s.min_snr, region=(rx, ry, rr),
-                                 region_factor=s.apex_region_factor)
-        det = detections_to_um(blobs, t, float(times[t]), px)
-        dome = None
-        if hm is not None and fit_now:
-            hx, hy, hz = hm.points_px()
-            if s.membrane_channel is None and len(blobs):
-                # primordia bulge out of the reporter's surface: leave their cells out of the fit
-                from scipy.spatial import cKDTree
-
-                dist, idx = cKDTree(blobs[["x_px", "y_px"]].to_numpy(float)).query(np.column_stack([hx, hy]))
-                far = dist > 1.5 * blobs["radius_px"].to_numpy(float)[idx]
-                hx, hy, hz = hx[far], hy[far], hz[far]
-            dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=dome_prev, robust_um=max(0.5, 0.25 * dz))
-            if not dome_is_plausible(dome, (nx * px, ny * px)):
-                dome = None  # no summit found (a plane, or a summit outside the field)
-            dome_prev = dome if dome is not None else dome_prev
-            if dome is not None:
-                last_fit = t
+        rx, ry, rr = m.region
+        det = detections_to_um(m.blobs, t, float(times[t]), px)
         if dome is not None:
             apex_px = (dome["x_um"] / px, dome["y_um"] / px)
-        elif dome_ref is not None and vol.ndim == 3 and not is_blank:
+        elif dome_ref is not None and is3d and not is_blank:
             # the last fitted summit, carried into this frame (by the previous frame's registration)
             apex_px = tuple(float(v) for v in reg.from_reference(*dome_ref))
         else:
@@ -200,11 +332,12 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             det["z_um"] = det.pop("z_px").to_numpy(float) * dz
         elif hm is not None:
             det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-        elif hm_last is not None and vol.ndim == 3 and not is_blank:
+        elif hm_last is not None and is3d and not is_blank:
             # the last height map, read where each detection lies in that map's own frame
             xr0, yr0 = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-            m = hm_matrix
-            det["z_um"] = hm_last.at(m[0, 0] * xr0 + m[0, 1] * yr0 + m[0, 2], m[1, 0] * xr0 + m[1, 1] * yr0 + m[1, 2])
+            mt = hm_matrix
+            det["z_um"] = hm_last.at(mt[0, 0] * xr0 + mt[0, 1] * yr0 + mt[0, 2],
+                                     mt[1, 0] * xr0 + mt[1, 1] * yr0 + mt[1, 2])
         if hm is not None:
             hm_last, hm_matrix = hm, reg.current_matrix
         if on_frame is not None:
@@ -229,9 +362,11 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                          "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
                          "_bx": c * a[0] - sn * a[1], "_by": sn * a[0] + c * a[1]})
         crow["dome_fitted"] = dome is not None
-        crow["_fill"] = bool(vol.ndim == 3 and not is_blank and not fit_now)
+        crow["_fill"] = bool(is3d and not is_blank and not m.fitted)
         centre_rows.append(crow)
         det_parts.append(det)
+    if expected != stack.n_frames:
+        raise RuntimeError(f"{expected} of {stack.n_frames} frames were measured")
     centres = pd.DataFrame(centre_rows)
     if "_bx" in centres.columns:
         _fill_domes(centres)

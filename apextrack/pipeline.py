@@ -24,7 +24,7 @@ from .errors import AnalysisError
 from .imaging import TopViewWriter, image_stage
 from .link import add_polar, link_tracks
 from .results import StagedFolder, check_output_dir, write_result_tables
-from .settings import Settings, from_dict
+from .settings import Settings, from_dict, result_settings
 from .stack import Stack, StackWarning, read_stack
 from .tables import sha256_file, write_json
 
@@ -146,7 +146,7 @@ def make_summary(measured: Measurements, detections: pd.DataFrame, settings: Set
         "n_tracks": int(measured.tracks["track_id"].nunique()),
         "n_primordia": int(len(measured.primordia)),
         "birth_order": dict(measured.birth_info),
-        "settings": settings.to_dict(),
+        "settings": result_settings(settings),
     })
     return summary
 

@@ -69,6 +69,9 @@ class Settings:
     parastichy_min_primordia: int = _p(6, "", "fewest primordia visible in one frame to look for contact parastichies", low=3)
     mode_tolerance_deg: float = _p(25.0, "deg", "largest deviation of an angle from a pattern mode's prediction that still counts as fitting it", low=0.0, high=90.0)
     permutation_prior: float = _p(0.05, "", "prior probability that an organ starts a permuted block of birth order", low=0.0, high=0.5)
+    # --- computing (the results do not depend on these) ---------------------------------------
+    threads: int = _p(0, "", "threads measuring frames of one stack at once (0: one per CPU core); every frame is measured on its own and the results are put together in frame order, so the tables are the same for any number", low=0, high=256)
+    frames_per_task: int = _p(32, "frames", "batch: a stack with more frames than this is split into tasks of this many frames, measured on any worker and put together by one task per stack (0: one task per stack)", low=0)
     # --- output ------------------------------------------------------------------------------
     report: bool = _p(True, "", "write report.html with figures")
     report_frame: int | None = _p(None, "", "frame shown in the report's top view (default: the last)", low=0)
@@ -93,6 +96,15 @@ class Settings:
 
 
 FIELD_NAMES = [f.name for f in fields(Settings)]
+#: Settings that change how the work is spread, never the results (left out of ``summary.json``,
+#: kept in ``run.json``).
+COMPUTING_FIELDS = ("threads", "frames_per_task")
+
+
+def result_settings(s: "Settings") -> dict[str, Any]:
+    """The settings that determine the results (:meth:`Settings.to_dict` without
+    :data:`COMPUTING_FIELDS`)."""
+    return {k: v for k, v in s.to_dict().items() if k not in COMPUTING_FIELDS}
 
 
 def _type_name(f) -> str:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 import re
+import threading
 import warnings as _warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -70,6 +71,9 @@ class Stack:
     source_format: str = "array"
     _timepoint: Callable[[int], np.ndarray] | None = field(default=None, repr=False)
     _close: Callable[[], None] | None = field(default=None, repr=False)
+    #: serialises reads through a shared decoder (a zarr view of a compressed TIFF); memory maps,
+    #: arrays and one-file-per-timepoint folders are read concurrently
+    _lock: Any = field(default_factory=threading.Lock, repr=False, compare=False)
 
     # -- shape ----------------------------------------------------------------------------------
     @property
@@ -132,10 +136,14 @@ class Stack:
             index = [slice(None)] * len(self.axes)
             index[self.axes.index("T")] = t
             if isinstance(self.data, np.memmap):
-                arr = np.array(self.data[tuple(index)])  # a copy, so that the mapped pages can go
-                _drop_mapped_pages(self.data)
+                view = self.data[tuple(index)]
+                arr = np.array(view)  # a copy, so that the mapped pages can go
+                _drop_mapped_pages(self.data, view)
                 return arr
-            return np.asarray(self.data[tuple(index)])
+            if isinstance(self.data, np.ndarray):
+                return np.asarray(self.data[tuple(index)])
+            with self._lock:
+                return np.asarray(self.data[tuple(index)])
         except (InputError, MemoryError):
             raise
         except Exception as exc:  # decoding errors of a truncated or corrupt file
@@ -478,17 +486,29 @@ def _read_tiff(path: Path, time_axis: str | None) -> Stack:
     return stack
 
 
-def _drop_mapped_pages(mm: np.memmap) -> None:
+def _drop_mapped_pages(mm: np.memmap, part: np.ndarray | None = None) -> None:
     """Release this process' pages of a read-only memory map (they stay in the page cache), so
-    that resident memory does not grow with the number of frames read."""
+    that resident memory does not grow with the number of frames read: the pages spanned by
+    ``part`` (a view into ``mm``), or all of them."""
     import mmap
 
     m = getattr(mm, "_mmap", None)
     if m is None or mm.mode not in ("r", "c") or not hasattr(mmap, "MADV_DONTNEED"):
         return
     try:
-        m.madvise(mmap.MADV_DONTNEED)
-    except (OSError, ValueError):
+        if part is None or part.size == 0:
+            m.madvise(mmap.MADV_DONTNEED)
+            return
+        base = np.frombuffer(m, np.uint8).__array_interface__["data"][0]
+        from numpy.lib.array_utils import byte_bounds
+
+        lo, hi = byte_bounds(part)
+        page = mmap.PAGESIZE
+        start = ((lo - base) // page) * page
+        stop = min(-(-(hi - base) // page) * page, len(m))
+        if 0 <= start < stop:
+            m.madvise(mmap.MADV_DONTNEED, start, stop - start)
+    except (OSError, ValueError, TypeError):
         pass
 
 

@@ -88,12 +88,13 @@ def memmap_run(long_tiff, warmed_up, tmp_path_factory):
     d = tmp_path_factory.mktemp("runs")
     stack = read_stack(long_tiff)
     is_memmap = isinstance(stack.data, np.memmap)
-    peak16 = _peak_of_analysis(stack, d / "all", report=False)
+    peak16 = _peak_of_analysis(stack, d / "all", report=False, threads=1)
+    peak16_2 = _peak_of_analysis(stack, d / "all2", report=False, threads=2)
     mm = tifffile.memmap(long_tiff)
     short = from_array(mm[:4], "TZYX", pixel_size_um=PIXEL_UM, interval_h=INTERVAL_H, z_step_um=Z_UM)
-    peak4 = _peak_of_analysis(short, d / "first4", report=False)
-    return {"out": d / "all", "peak16": peak16, "peak4": peak4, "nbytes": stack.nbytes,
-            "frame_bytes": mm[0].nbytes, "is_memmap": is_memmap}
+    peak4 = _peak_of_analysis(short, d / "first4", report=False, threads=1)
+    return {"out": d / "all", "peak16": peak16, "peak16_2threads": peak16_2, "peak4": peak4,
+            "nbytes": stack.nbytes, "frame_bytes": mm[0].nbytes, "is_memmap": is_memmap}
 
 
 def test_memory_mapped_stack_is_not_loaded_whole(memmap_run):
@@ -101,6 +102,13 @@ def test_memory_mapped_stack_is_not_loaded_whole(memmap_run):
     # the analysis holds far less than the 8.4 MB stack at any time (the report, drawn from the
     # tables and one top-view frame, needs a fixed few MB for its figures, whatever T)
     assert memmap_run["peak16"] < memmap_run["nbytes"] / 2, memmap_run
+
+
+def test_threads_hold_one_more_frame_each(memmap_run):
+    # with two threads one more frame is in flight: its copy of the volume and its float32
+    # intermediates (a few frame sizes), never the stack
+    extra = memmap_run["peak16_2threads"] - memmap_run["peak16"]
+    assert extra < 4 * memmap_run["frame_bytes"], memmap_run
 
 
 def test_peak_memory_does_not_grow_with_frames(memmap_run):
@@ -135,7 +143,7 @@ def test_ome_zarr_is_read_with_its_scale_and_streams(long_tiff, memmap_run, tmp_
         assert stack.channel_names == ["reporter"] and not stack.warnings, version
         assert np.array_equal(stack.timepoint(5), raw[5]), version
     # zarr-backed (one chunk per timepoint): streams like the memory map
-    peak = _peak_of_analysis(stack, tmp_path / "res", report=False)
+    peak = _peak_of_analysis(stack, tmp_path / "res", report=False, threads=1)
     assert peak < stack.nbytes / 2, (peak, stack.nbytes)
     # same pixels, same scale → the same detections as from the TIFF
     from_zarr = pd.read_csv(tmp_path / "res" / "detections.csv")
