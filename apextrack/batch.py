@@ -1,5 +1,5 @@
-"""Many stacks on dask: one task per stack, results per stack, ``experiment.csv`` and an
-experiment report.
+"""Many stacks on dask: one task per stack (and, for a long stack, one task per block of
+``frames_per_task`` frames), results per stack, ``experiment.csv`` and an experiment report.
 
 Each task receives a *path* (never an array) and opens its own file in the worker, so that
 memory-mapped and zarr-backed stacks stream from disk there (a zarr store built by tifffile
@@ -167,11 +167,13 @@ def summary_row(summary: dict) -> dict[str, Any]:
 
 
 def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool = False,
-                       name: str | None = None) -> dict[str, Any]:
+                       name: str | None = None, parts: list | None = None) -> dict[str, Any]:
     """Analyse one stack into ``out_dir`` and return its ``experiment.csv`` row.
 
-    Runs in a worker: opens the stack itself from ``path``. Never raises for a bad stack: the
-    row then has ``status = "failed"`` and the error in one line.
+    Runs in a worker: opens the stack itself from ``path``. ``parts`` are the results of
+    :func:`measure_frames_task` for consecutive blocks of frames covering the whole stack (a
+    long stack measured by several tasks); without them the frames are measured here. Never
+    raises for a bad stack: the row then has ``status = "failed"`` and the error in one line.
     """
     from .pipeline import analyse
 
@@ -179,9 +181,17 @@ def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool 
     row: dict[str, Any] = {"stack": name or Path(path).name, "source": str(path), "status": "ok", "error": "",
                            "results_dir": Path(out_dir).name}
     try:
+        measures = None
+        if parts is not None:
+            failed = next((p for p in parts if isinstance(p, str)), None)
+            if failed is not None:
+                raise _TaskFailed(failed)
+            measures = (m for part in parts for m in part)
         res = analyse(path, out=out_dir, settings=from_dict(settings) if settings else None,
-                      overwrite=overwrite, progress=False)
+                      overwrite=overwrite, progress=False, measures=measures)
         row.update(summary_row(res.summary))
+    except _TaskFailed as exc:
+        row.update(status="failed", error=str(exc))
     except ApextrackError as exc:
         row.update(status="failed", error=exc.one_line())
     except MemoryError:
@@ -190,6 +200,78 @@ def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool 
         row.update(status="failed", error=f"{path}: internal error {type(exc).__name__}: {exc}")
     row["wall_time_s"] = round(time.perf_counter() - t0, 3)
     return row
+
+
+class _TaskFailed(Exception):
+    """A block of frames of this stack could not be measured (the message is the one line)."""
+
+
+def _open_for_settings(path: str, s: Settings):
+    """The stack at ``path`` opened as :func:`apextrack.pipeline.analyse` opens it (its
+    warnings are the stack task's to report)."""
+    import warnings
+
+    from .stack import read_stack
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return read_stack(path, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um, interval_h=s.interval_h,
+                          time_axis=s.time_axis)
+
+
+def measure_frames_task(path: str, settings: dict, first: int, stop: int) -> list | str:
+    """Measure frames ``first … stop − 1`` of the stack at ``path`` (a block of a long stack).
+
+    Runs in a worker and opens the stack itself. Every frame is measured on its own (see
+    :func:`apextrack.imaging.measure_frame`), after the context the whole stack shares
+    (:func:`apextrack.imaging.stage_context`, from its first frame with signal), so the blocks
+    together give exactly what one task would. Returns the list of
+    :class:`~apextrack.imaging.FrameMeasure`, or the error in one line.
+    """
+    from .imaging import measure_frames, stage_context
+
+    s = from_dict(settings) if settings else Settings()
+    try:
+        stack = _open_for_settings(path, s)
+        try:
+            ctx, done = stage_context(stack, s)
+            return list(measure_frames(stack, s, ctx, frames=range(first, stop),
+                                       done={t: m for t, m in done.items() if first <= t < stop}, threads=1))
+        finally:
+            stack.close()
+    except ApextrackError as exc:
+        return exc.one_line()
+    except MemoryError:
+        return f"{path}: out of memory measuring frames {first}–{stop - 1}"
+
+
+def frame_blocks(n_frames: int, frames_per_task: int) -> list[tuple[int, int]]:
+    """Consecutive blocks ``(first, stop)`` of at most ``frames_per_task`` frames covering a
+    stack of ``n_frames`` (one block when ``frames_per_task`` is 0 or the stack is short).
+
+    Examples
+    --------
+    >>> frame_blocks(10, 4)
+    [(0, 4), (4, 8), (8, 10)]
+    >>> frame_blocks(10, 0)
+    [(0, 10)]
+    """
+    if frames_per_task <= 0 or n_frames <= frames_per_task:
+        return [(0, n_frames)]
+    return [(a, min(a + frames_per_task, n_frames)) for a in range(0, n_frames, frames_per_task)]
+
+
+def _n_frames(path: Path, s: Settings) -> int | None:
+    """Frames of the stack at ``path`` (header only), or None when it cannot be opened (its task
+    will then report why)."""
+    try:
+        stack = _open_for_settings(str(path), s)
+    except ApextrackError:
+        return None
+    try:
+        return stack.n_frames
+    finally:
+        stack.close()
 
 
 # ----------------------------------------------------------------------------------------------
@@ -302,11 +384,22 @@ def run_batch(source, out: str | Path, settings: Settings | dict | None = None, 
         if progress:
             print(f"apextrack: {len(paths)} stack(s) on {len(client.scheduler_info().get('workers', {}))} dask "
                   f"worker(s); dashboard: {dashboard}", file=err)
-        settings_dict = s.to_dict()
+        # one thread per task: the workers already use the cores
+        settings_dict = s.replace(threads=1).to_dict()
         futures = {}
         for i, (p, name) in enumerate(zip(paths, names)):
-            fut = client.submit(analyse_stack_task, str(p.resolve()), str((out / name).resolve()), settings_dict,
-                                overwrite, name, pure=False, key=f"apextrack-stack-{i}-{name}-{time.time_ns()}")
+            stamp = f"{i}-{name}-{time.time_ns()}"
+            src = str(p.resolve())
+            n = _n_frames(p, s) if s.frames_per_task > 0 else None
+            blocks = frame_blocks(n, s.frames_per_task) if n else [(0, 0)]
+            parts = None
+            if len(blocks) > 1:
+                # a long stack: blocks of frames measured by tasks of their own, put together
+                # (registration, linking, measurements, report) by the stack's task
+                parts = [client.submit(measure_frames_task, src, settings_dict, a, b, pure=False,
+                                       key=f"apextrack-frames-{a}-{b - 1}-{stamp}") for a, b in blocks]
+            fut = client.submit(analyse_stack_task, src, str((out / name).resolve()), settings_dict,
+                                overwrite, name, parts, pure=False, key=f"apextrack-stack-{stamp}")
             futures[fut] = i
         rows: list[dict | None] = [None] * len(paths)
         bar = None

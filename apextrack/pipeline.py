@@ -153,7 +153,7 @@ def make_summary(measured: Measurements, detections: pd.DataFrame, settings: Set
 
 def analyse(source=None, out: str | Path | None = None, settings: Settings | dict | None = None, *,
             overwrite: bool = False, progress: bool = True, settings_file=None, write_report: bool | None = None,
-            **overrides) -> AnalysisResult:
+            measures=None, **overrides) -> AnalysisResult:
     """Analyse one time-lapse stack end to end.
 
     Parameters
@@ -172,6 +172,9 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         instead (once per frame of the image stage).
     write_report : bool, optional
         Write ``report.html`` and ``figures/`` into ``out`` (default: ``settings.report``).
+    measures : iterable of :class:`apextrack.imaging.FrameMeasure`, optional
+        Every frame's measurements, in frame order, made elsewhere (e.g. by dask tasks, see
+        :mod:`apextrack.batch`); by default the frames are measured here.
 
     Returns
     -------
@@ -217,7 +220,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         t0 = time.perf_counter()
         image_extra: dict = {}
         try:
-            detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra)
+            detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra, measures=measures)
         finally:
             if writer is not None:
                 writer.close()

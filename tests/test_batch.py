@@ -128,6 +128,28 @@ def test_corrupt_stack_is_reported_and_the_others_complete(batch_run):
     assert (df.loc[df["stack"] != "bed_0_damaged", "status"] == "ok").all()
 
 
+def test_long_stacks_split_into_frame_tasks_give_the_same_tables(batch_run, client, stacks, tmp_path):
+    # blocks of 2 frames measured by tasks of their own, put together by the stack's task:
+    # the same tables, byte for byte, as one task per stack (both in single-threaded workers)
+    from distributed import get_task_stream
+
+    with get_task_stream(client) as stream:
+        res = run_batch(str(stacks / "bed_[13]*.tif"), tmp_path / "blocks", {**SETTINGS, "frames_per_task": 2},
+                        client=client, progress=False, report=False)
+    assert res.experiment["status"].tolist() == ["ok", "ok"]
+    keys = sorted(str(t["key"]) for t in stream.data)
+    # 3 blocks per stack (frames 0–1, 2–3, 4) and one task per stack that puts them together
+    assert sum(k.startswith("apextrack-frames-") for k in keys) == 6, keys
+    assert sum(k.startswith("apextrack-stack-") for k in keys) == 2, keys
+    for name in ("bed_1", "bed_3"):
+        for table in TABLES + ["registration"]:
+            a, b = batch_run.out / name / f"{table}.csv", res.out / name / f"{table}.csv"
+            assert a.exists() == b.exists(), (name, table)
+            if a.exists():
+                assert a.read_bytes() == b.read_bytes(), (name, table)
+        assert (res.out / name / "topview.tif").read_bytes() == (batch_run.out / name / "topview.tif").read_bytes()
+
+
 def test_experiment_table_and_report(batch_run):
     back = read_experiment(batch_run.out)
     assert list(back.columns) == EXPERIMENT_COLUMNS
