@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from .detect import detect_blobs, detections_to_um, scales_px
+from .register import warp_view
 from .settings import Settings
 from .stack import Stack
 
@@ -260,6 +261,10 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
         ex.shutdown(wait=True, cancel_futures=True)
 
 
+def _warp_and_hand_on(on_frame, t: int, view: np.ndarray, matrix: np.ndarray) -> None:
+    on_frame(t, warp_view(view, matrix))
+
+
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 on_frame: Callable[[int, np.ndarray], None] | None = None,
                 extra: dict | None = None, measures: Iterable[FrameMeasure] | None = None
@@ -310,61 +315,78 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     hm_last, hm_matrix = None, None   # last height map and its frame's registration (frame 0 → it)
     dome_ref = None          # last fitted summit in frame-0 pixels
     expected = 0
-    for m in progress_over(measures, stack.n_frames, "frames", progress):
-        t = m.t
-        if t != expected:
-            raise RuntimeError(f"frame {t} measured out of order (expected frame {expected})")
-        expected += 1
-        is_blank, view, hm, dome, is3d = m.blank, m.view, m.height, m.dome, m.ndim == 3
-        if is_blank:
-            blank.append(t)
-        rx, ry, rr = m.region
-        det = detections_to_um(m.blobs, t, float(times[t]), px)
-        if dome is not None:
-            apex_px = (dome["x_um"] / px, dome["y_um"] / px)
-        elif dome_ref is not None and is3d and not is_blank:
-            # the last fitted summit, carried into this frame (by the previous frame's registration)
-            apex_px = tuple(float(v) for v in reg.from_reference(*dome_ref))
-        else:
-            apex_px = (rx, ry)
-        reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
-        if "z_px" in det.columns:
-            det["z_um"] = det.pop("z_px").to_numpy(float) * dz
-        elif hm is not None:
-            det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-        elif hm_last is not None and is3d and not is_blank:
-            # the last height map, read where each detection lies in that map's own frame
-            xr0, yr0 = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-            mt = hm_matrix
-            det["z_um"] = hm_last.at(mt[0, 0] * xr0 + mt[0, 1] * yr0 + mt[0, 2],
-                                     mt[1, 0] * xr0 + mt[1, 1] * yr0 + mt[1, 2])
-        if hm is not None:
-            hm_last, hm_matrix = hm, reg.current_matrix
-        if on_frame is not None:
-            # the top view resampled into the first frame's frame of reference: it lines up
-            # with the registered coordinates of every table
-            on_frame(t, reg.warp_to_reference(view))
-        # coordinates into the first frame's frame of reference
-        xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
-        det["x_um"], det["y_um"] = xr * px, yr * px
-        vx, vy = reg.to_reference(rx, ry)
-        crow = {"frame": t, "time_h": float(times[t]), "view_x_um": float(vx) * px, "view_y_um": float(vy) * px,
-                "region_radius_um": rr * px}
-        if dome is not None:
-            sx, sy = reg.to_reference(dome["x_um"] / px, dome["y_um"] / px)
-            dome_ref = (float(sx), float(sy))
-            a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
-            # the tilt vector turned into the first frame's orientation (inverse of the
-            # display-counter-clockwise rotation applied to image (x, y) vectors)
-            rot = math.radians(reg.current_rotation_deg)
-            c, sn = math.cos(rot), math.sin(rot)
-            crow.update({"dome_x_um": float(sx) * px, "dome_y_um": float(sy) * px, "dome_z_um": dome["z_um"],
-                         "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
-                         "_bx": c * a[0] - sn * a[1], "_by": sn * a[0] + c * a[1]})
-        crow["dome_fitted"] = dome is not None
-        crow["_fill"] = bool(is3d and not is_blank and not m.fitted)
-        centre_rows.append(crow)
-        det_parts.append(det)
+    out_pool, out_jobs = None, deque()
+    if on_frame is not None and _n_threads(s.threads) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        out_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="apextrack-topview")
+    try:
+        for m in progress_over(measures, stack.n_frames, "frames", progress):
+            t = m.t
+            if t != expected:
+                raise RuntimeError(f"frame {t} measured out of order (expected frame {expected})")
+            expected += 1
+            is_blank, view, hm, dome, is3d = m.blank, m.view, m.height, m.dome, m.ndim == 3
+            if is_blank:
+                blank.append(t)
+            rx, ry, rr = m.region
+            det = detections_to_um(m.blobs, t, float(times[t]), px)
+            if dome is not None:
+                apex_px = (dome["x_um"] / px, dome["y_um"] / px)
+            elif dome_ref is not None and is3d and not is_blank:
+                # the last fitted summit, carried into this frame (by the previous frame's registration)
+                apex_px = tuple(float(v) for v in reg.from_reference(*dome_ref))
+            else:
+                apex_px = (rx, ry)
+            reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
+            if "z_px" in det.columns:
+                det["z_um"] = det.pop("z_px").to_numpy(float) * dz
+            elif hm is not None:
+                det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+            elif hm_last is not None and is3d and not is_blank:
+                # the last height map, read where each detection lies in that map's own frame
+                xr0, yr0 = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+                mt = hm_matrix
+                det["z_um"] = hm_last.at(mt[0, 0] * xr0 + mt[0, 1] * yr0 + mt[0, 2],
+                                         mt[1, 0] * xr0 + mt[1, 1] * yr0 + mt[1, 2])
+            if hm is not None:
+                hm_last, hm_matrix = hm, reg.current_matrix
+            if on_frame is not None:
+                # the top view resampled into the first frame's frame of reference: it lines up
+                # with the registered coordinates of every table (in a thread of its own when
+                # frames are measured in threads; the calls keep frame order)
+                if out_pool is None:
+                    on_frame(t, warp_view(view, reg.current_matrix))
+                else:
+                    out_jobs.append(out_pool.submit(_warp_and_hand_on, on_frame, t, view, reg.current_matrix))
+                    while len(out_jobs) > 2:
+                        out_jobs.popleft().result()
+            # coordinates into the first frame's frame of reference
+            xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+            det["x_um"], det["y_um"] = xr * px, yr * px
+            vx, vy = reg.to_reference(rx, ry)
+            crow = {"frame": t, "time_h": float(times[t]), "view_x_um": float(vx) * px, "view_y_um": float(vy) * px,
+                    "region_radius_um": rr * px}
+            if dome is not None:
+                sx, sy = reg.to_reference(dome["x_um"] / px, dome["y_um"] / px)
+                dome_ref = (float(sx), float(sy))
+                a = _tilt_vector(dome["tilt_deg"], dome["tilt_direction_deg"])
+                # the tilt vector turned into the first frame's orientation (inverse of the
+                # display-counter-clockwise rotation applied to image (x, y) vectors)
+                rot = math.radians(reg.current_rotation_deg)
+                c, sn = math.cos(rot), math.sin(rot)
+                crow.update({"dome_x_um": float(sx) * px, "dome_y_um": float(sy) * px, "dome_z_um": dome["z_um"],
+                             "curvature_um": dome["curvature_um"], "dome_up": dome["up"], "dome_rms_um": dome["rms_um"],
+                             "_bx": c * a[0] - sn * a[1], "_by": sn * a[0] + c * a[1]})
+            crow["dome_fitted"] = dome is not None
+            crow["_fill"] = bool(is3d and not is_blank and not m.fitted)
+            centre_rows.append(crow)
+            det_parts.append(det)
+        while out_jobs:
+            out_jobs.popleft().result()
+    finally:
+        if out_pool is not None:
+            out_pool.shutdown(wait=True, cancel_futures=True)
     if expected != stack.n_frames:
         raise RuntimeError(f"{expected} of {stack.n_frames} frames were measured")
     centres = pd.DataFrame(centre_rows)
