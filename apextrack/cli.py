@@ -10,9 +10,9 @@ from __future__ import annotations
 
 import argparse
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 
-from . import __version__
 from .errors import ApextrackError, SettingsError
 
 
@@ -21,6 +21,20 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message):  # noqa: D401
         self.exit(2, f"apextrack: error: {message} — see '{self.prog} --help'\n")
+
+
+class _VersionAction(argparse.Action):
+    """``--version``: like argparse's, but reads the version (importlib.metadata) only when asked."""
+
+    def __init__(self, option_strings, dest=argparse.SUPPRESS, default=argparse.SUPPRESS,
+                 help="show program's version number and exit"):
+        super().__init__(option_strings=option_strings, dest=dest, default=default, nargs=0, help=help)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        from . import __version__
+
+        print(f"apextrack {__version__}")
+        parser.exit()
 
 
 def _float_pair(text: str):
@@ -185,14 +199,37 @@ def _run_compare(args) -> int:
 # ----------------------------------------------------------------------------------------------
 # simulate and fit
 # ----------------------------------------------------------------------------------------------
-def _add_simulate(sub):
-    from .model.patterns import PATTERNS
+class _PatternNames(Sequence):
+    """The names of :data:`apextrack.model.patterns.PATTERNS`, sorted, read on first use.
 
+    Building the parser must not import the model (numpy, pandas, scipy): every command, and
+    ``--help``, would pay for it. argparse only looks at the choices when ``--pattern`` is given
+    or the ``simulate`` help is shown.
+    """
+
+    _names: list[str] | None = None
+
+    def _load(self) -> list[str]:
+        if self._names is None:
+            from .model.patterns import PATTERNS
+
+            self._names = sorted(PATTERNS)
+        return self._names
+
+    def __getitem__(self, i):
+        return self._load()[i]
+
+    def __len__(self) -> int:
+        return len(self._load())
+
+
+def _add_simulate(sub):
     p = sub.add_parser("simulate", help="simulate a phyllotaxis pattern with the inhibitory-field model",
                        description="Run the Douady–Couder inhibitory-field model for a named pattern and write "
                                    "a results folder in the same schema as 'analyse' (so 'compare' and the "
                                    "report read it unchanged); with --render, also a synthetic stack and its truth.")
-    p.add_argument("--pattern", choices=sorted(PATTERNS), default="spiral", help="pattern to simulate")
+    pattern = p.add_argument("--pattern", default="spiral", help="pattern to simulate")
+    pattern.choices = _PatternNames()  # set after add_argument, which would format (and so load) them
     p.add_argument("--params", metavar="FILE", help="model parameters (TOML or JSON) overriding the pattern's")
     p.add_argument("--out", "-o", required=True, help="results folder")
     p.add_argument("--render", action="store_true", help="also render a synthetic 3D+t stack with its truth")
@@ -316,7 +353,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="apextrack",
                      description="Track primordia on time-lapse stacks of shoot apices and measure "
                                  "their phyllotaxis.")
-    parser.add_argument("--version", action="version", version=f"apextrack {__version__}")
+    parser.add_argument("--version", action=_VersionAction)
     parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for add in COMMANDS:
