@@ -62,6 +62,7 @@ def _add_analyse(sub):
     p.add_argument("--centre", "--center", type=_float_pair, dest="centre_um", metavar="X,Y",
                    help="apex centre in µm (instead of fitting it)")
     p.add_argument("--min-snr", type=float, dest="min_snr", help="minimum signal-to-noise ratio of a detection")
+    p.add_argument("--threads", type=int, metavar="N", help="threads measuring frames at once (default: one per core)")
     p.add_argument("--settings", dest="settings_file", metavar="FILE.toml", help="settings file")
     p.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress bars")
@@ -72,7 +73,7 @@ def _run_analyse(args) -> int:
     from .pipeline import analyse
 
     overrides = {k: getattr(args, k) for k in ("channel", "pixel_size_um", "z_step_um", "interval_h",
-                                               "time_axis", "centre_um", "min_snr")}
+                                               "time_axis", "centre_um", "min_snr", "threads")}
     if args.stack is None and not args.quiet:
         print("apextrack: no stack given: analysing the bundled demo stack", file=sys.stderr)
     res = analyse(args.stack, out=args.out, overwrite=args.overwrite, progress=not args.quiet,
@@ -125,7 +126,7 @@ def _run_settings(args) -> int:
 def _add_batch(sub):
     p = sub.add_parser("batch", help="analyse many stacks on dask",
                        description="Analyse every stack of a folder (or matching a glob pattern) on dask, one "
-                                   "task per stack: results per stack in OUT/<stack>/, one row per stack in "
+                                   "task per stack (long stacks in blocks of frames): results per stack in OUT/<stack>/, one row per stack in "
                                    "OUT/experiment.csv and a report comparing the stacks. A failed stack is "
                                    "reported and the others go on (exit code 3 when any failed).")
     p.add_argument("source", metavar="FOLDER_OR_GLOB", help="folder of stacks, or a quoted glob such as 'data/*.tif'")
@@ -136,6 +137,8 @@ def _add_batch(sub):
     p.add_argument("--channel", help="reporter channel: name or 0-based index")
     p.add_argument("--pixel-size", type=float, dest="pixel_size_um", metavar="UM", help="x/y pixel size in µm")
     p.add_argument("--interval", type=float, dest="interval_h", metavar="HOURS", help="time between frames in hours")
+    p.add_argument("--frames-per-task", type=int, dest="frames_per_task", metavar="N",
+                   help="split stacks longer than N frames into tasks of N frames (default 32; 0: one task per stack)")
     p.add_argument("--overwrite", action="store_true", help="replace existing per-stack results folders")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress bars")
     p.set_defaults(func=_run_batch)
@@ -146,7 +149,7 @@ def _run_batch(args) -> int:
 
     if args.workers is not None and args.workers < 1:
         raise SettingsError(f"--workers must be at least 1, not {args.workers}")
-    overrides = {k: getattr(args, k) for k in ("channel", "pixel_size_um", "interval_h")}
+    overrides = {k: getattr(args, k) for k in ("channel", "pixel_size_um", "interval_h", "frames_per_task")}
     res = run_batch(args.source, args.out, scheduler=args.scheduler, n_workers=args.workers,
                     overwrite=args.overwrite, progress=not args.quiet, settings_file=args.settings_file, **overrides)
     n = len(res.experiment)
