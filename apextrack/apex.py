@@ -105,17 +105,165 @@ def _tilt_vector(tilt_deg: float, tilt_direction_deg: float) -> np.ndarray:
     return math.sin(b) * np.array([math.cos(p), -math.sin(p)])
 
 
-def _dome_residual(params, x, y, z, up):
-    sx, sy, sz, log_rc, ax, ay = params
-    rc = math.exp(log_rc)
-    a2 = ax * ax + ay * ay
-    if a2 >= 0.99:
-        return np.full(len(x), 1e6)
-    cb = math.sqrt(1.0 - a2)
-    px, py, pz = x - sx, y - sy, up * (z - sz)
-    pa = px * ax + py * ay
-    rho2 = px * px + py * py - pa * pa - 2.0 * cb * pz * pa + a2 * pz * pz
-    return pa + cb * pz + rho2 / (2.0 * rc)
+# at most this many surface points enter a dome fit: an even, deterministic subsample of the
+# points in the order given (a height map's cells, row by row) when there are more
+_DOME_FIT_POINTS = 1000
+# axis tilts (degrees) tried as starts, each in four directions, besides the untilted axis
+_DOME_START_TILTS = (15.0,)
+
+
+def _axis_frame(qx, qy, qz, ax, ay):
+    """Coordinates about the axis ``(ax, ay, √(1 − ax² − ay²))``: ``W`` along it and ``(U, V)``
+    across it, after the smallest rotation that takes the z axis onto it (the turn of
+    :func:`level_offsets`). Also returns ``pa = ax·qx + ay·qy``, ``s`` (``U = qx − ax·s``) and the
+    axis' z component. ``ax``, ``ay`` may be scalars or ``(K, 1)`` columns (K axes at once)."""
+    cb = np.sqrt(1.0 - ax * ax - ay * ay)
+    pa = ax * qx + ay * qy
+    s = pa / (1.0 + cb) + qz
+    return qx - ax * s, qy - ay * s, pa + cb * qz, pa, s, cb
+
+
+def _dome_residual(p, q):
+    """Distance along the axis from the paraboloid ``W = c0 + c1·U + c2·V + c3·(U² + V²)``.
+
+    ``p = (c0, c1, c2, c3, ax, ay)``: for a fixed axis the residual is linear in ``c``; a cap
+    has ``c3 = −1/(2·Rc) < 0``, its summit at ``(U, V) = −(c1, c2)/(2·c3)``.
+    """
+    c0, c1, c2, c3, ax, ay = p
+    u, v, w, *_ = _axis_frame(q[0], q[1], q[2], ax, ay)
+    return w - c0 - c1 * u - c2 * v - c3 * (u * u + v * v)
+
+
+def _dome_derivatives(p, q):
+    """Residuals, their Jacobian ``(6, n)`` and second derivatives.
+
+    Only the axis enters non-linearly: the second derivatives are returned as
+    ``(d²r/da², d²r/da_x·da_y, d²r/da_y², d²r/dc·da)`` with the last of shape ``(6, n)`` holding
+    ``d²r/dc1·dax, d²r/dc1·day, d²r/dc2·dax, d²r/dc2·day, d²r/dc3·dax, d²r/dc3·day``.
+    """
+    c0, c1, c2, c3, ax, ay = p
+    qx, qy, qz = q
+    u, v, w, pa, s, cb = _axis_frame(qx, qy, qz, ax, ay)
+    rho2 = u * u + v * v
+    r = w - c0 - c1 * u - c2 * v - c3 * rho2
+    m = 1.0 + cb
+    m2 = m * m
+    bx, by = -ax / cb, -ay / cb                        # d cb / d(ax, ay)
+    cb3 = cb ** 3
+    bxx, bxy, byy = -1.0 / cb - ax * ax / cb3, -ax * ay / cb3, -1.0 / cb - ay * ay / cb3
+    sx = qx / m - (pa * bx / m2)
+    sy = qy / m - (pa * by / m2)
+    ux, uy, vx, vy = -s - ax * sx, -ax * sy, -ay * sx, -s - ay * sy
+    gu = c1 + 2.0 * c3 * u
+    gv = c2 + 2.0 * c3 * v
+    jac = np.empty((6, len(r)))
+    jac[0] = -1.0
+    jac[1] = -u
+    jac[2] = -v
+    jac[3] = -rho2
+    jac[4] = qx + bx * qz - gu * ux - gv * vx
+    jac[5] = qy + by * qz - gu * uy - gv * vy
+    pm = pa / (m2 * m)
+    sxx = (-2.0 / m2) * bx * qx + pm * (2.0 * bx * bx - m * bxx)
+    sxy = (-1.0 / m2) * (by * qx + bx * qy) + pm * (2.0 * bx * by - m * bxy)
+    syy = (-2.0 / m2) * by * qy + pm * (2.0 * by * by - m * byy)
+    # U_xx = −2 s_x − ax s_xx, U_xy = −s_y − ax s_xy, U_yy = −ax s_yy; V likewise with ay
+    c32 = 2.0 * c3
+    gs = gu * ax + gv * ay
+    rxx = bxx * qz + gs * sxx + 2.0 * gu * sx - c32 * (ux * ux + vx * vx)
+    rxy = bxy * qz + gs * sxy + gu * sy + gv * sx - c32 * (ux * uy + vx * vy)
+    ryy = byy * qz + gs * syy + 2.0 * gv * sy - c32 * (uy * uy + vy * vy)
+    cross = np.empty((6, len(r)))
+    cross[0], cross[1], cross[2], cross[3] = -ux, -uy, -vx, -vy
+    cross[4] = -2.0 * (u * ux + v * vx)
+    cross[5] = -2.0 * (u * uy + v * vy)
+    return r, jac, (rxx, rxy, ryy, cross)
+
+
+def _soft_l1(r, f):
+    """Σ f²·(√(1 + (r/f)²) − 1): the ``cost`` of ``scipy.optimize.least_squares`` with
+    ``loss="soft_l1"`` and ``f_scale=f``."""
+    return float(f * f * np.sum(np.sqrt(1.0 + (r / f) ** 2) - 1.0))
+
+
+def _dome_starts(q, tilts, f):
+    """For each trial axis (rows of ``tilts``), the linear fit of ``c`` (one robust reweighting)
+    and its soft-L1 cost, all axes at once; None when the points do not determine ``c``."""
+    ax, ay = tilts[:, :1], tilts[:, 1:]
+    u, v, w, *_ = _axis_frame(q[0], q[1], q[2], ax, ay)
+    feat = np.empty((len(tilts), 5, q.shape[1]))
+    feat[:, 0] = 1.0
+    feat[:, 1] = u
+    feat[:, 2] = v
+    feat[:, 3] = u * u + v * v
+    feat[:, 4] = w
+    ft = feat.transpose(0, 2, 1)
+    wt = None
+    for _ in range(2):
+        mom = np.matmul(feat if wt is None else feat * wt[:, None, :], ft)   # weighted moments
+        try:
+            c = np.linalg.solve(mom[:, :4, :4], mom[:, :4, 4:])[..., 0]
+        except np.linalg.LinAlgError:  # the points do not span the surface (e.g. one line)
+            return None
+        r = w - np.matmul(c[:, None, :], feat[:, :4])[:, 0]
+        wt = 1.0 / np.sqrt(1.0 + (r / f) ** 2)
+    return c, f * f * np.sum(1.0 / wt - 1.0, axis=1)
+
+
+def _dome_cost_derivatives(p, q, f):
+    """Soft-L1 cost of :func:`_dome_residual` at ``p``, its gradient, its exact Hessian (the
+    loss' Gauss–Newton term plus the residuals' own curvature) and the Gauss–Newton term alone;
+    also the residuals."""
+    r, jac, (rxx, rxy, ryy, cross) = _dome_derivatives(p, q)
+    t = 1.0 + (r / f) ** 2
+    wt = 1.0 / np.sqrt(t)
+    wr = wt * r                           # d cost / d r
+    g = jac @ wr
+    gn = (jac * (wt / t)) @ jac.T         # d² cost / d r² = wt³
+    h = gn.copy()
+    h[4, 4] += wr @ rxx
+    h[4, 5] += wr @ rxy
+    h[5, 5] += wr @ ryy
+    h[5, 4] = h[4, 5]
+    cw = cross @ wr
+    h[1:4, 4] += cw[0::2]
+    h[1:4, 5] += cw[1::2]
+    h[4, 1:4] = h[1:4, 4]
+    h[5, 1:4] = h[1:4, 5]
+    return f * f * float(np.sum(1.0 / wt - 1.0)), g, h, gn, r
+
+
+def _dome_newton(p, q, f, max_iter: int = 50):
+    """Minimise the soft-L1 cost of :func:`_dome_residual` from ``p``: Newton steps with the exact
+    Hessian, damped by the Levenberg–Marquardt rule (``H + λ·diag(H_Gauss–Newton)``, λ raised
+    until that is positive definite and the step lowers the cost). Returns ``p`` and the
+    residuals."""
+    cost, g, h, gn, r = _dome_cost_derivatives(p, q, f)
+    lam = 1e-6
+    for _ in range(max_iter):
+        damp = np.diag(np.diag(gn) + 1e-300)
+        while True:
+            a = h + lam * damp
+            try:
+                np.linalg.cholesky(a)  # positive definite: a descent step
+                pn = p - np.linalg.solve(a, g)
+            except np.linalg.LinAlgError:
+                pn = None
+            if pn is not None and pn[4] ** 2 + pn[5] ** 2 < 0.98:
+                rn = _dome_residual(pn, q)
+                cn = _soft_l1(rn, f)
+                if cn <= cost:
+                    break
+            lam *= 10.0
+            if lam > 1e10:
+                return p, r
+        if cost - cn <= 1e-8 * cost:
+            # the steps shrink quadratically: what is left after this one is far below that
+            return pn, rn
+        p = pn
+        cost, g, h, gn, r = _dome_cost_derivatives(p, q, f)
+        lam = max(lam * 0.1, 1e-9)
+    return p, r
 
 
 def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um: float = 1.0) -> dict | None:
@@ -125,9 +273,16 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
     tilted by ``tilt_deg`` so that its axis leans towards the azimuth ``tilt_direction_deg``
     (counter-clockwise on the displayed image) and placed with its summit at ``(x, y, z)``.
     The residual is the algebraic distance along the dome axis; a robust (soft-L1) loss with
-    scale ``robust_um`` keeps primordia bulges out of the fit. Several starting tilts are tried
-    (a tilted paraboloid differs from a shifted one only by its change of curvature away from
-    the summit) and the best fit kept.
+    scale ``robust_um`` keeps primordia bulges out of the fit.
+
+    For a given axis the paraboloid is linear in its other four parameters (axial offset, the
+    two linear terms across the axis, the curvature term), so every start is the linear fit
+    for one trial axis (untilted, and 15° in four directions; ``init``'s axis as well), one
+    robust reweighting, and the start of least cost is refined by damped Newton steps with the
+    exact Hessian. ``init`` only adds its axis to the trial ones: the refinement reaches the
+    same minimum from any of them, so a fit does not depend on whether (or which) previous fit
+    is passed. At most ``_DOME_FIT_POINTS`` points are used: an even subsample in the given
+    order (deterministic).
 
     Parameters
     ----------
@@ -136,14 +291,15 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
     up : {1, -1}
         Side the dome faces along z.
     init : dict, optional
-        A previous fit (same keys as the result) to start from.
+        A previous fit (same keys as the result): its axis is one more trial start.
 
     Returns
     -------
     dict or None
         :data:`DOME_KEYS`: summit ``x_um, y_um, z_um``, ``curvature_um`` (radius of curvature
-        at the summit), ``tilt_deg``, ``tilt_direction_deg``, ``up``, ``rms_um``, ``n``; None
-        with fewer than 12 points.
+        at the summit), ``tilt_deg``, ``tilt_direction_deg``, ``up``, ``rms_um`` (robust scatter
+        of the residuals), ``n`` (points used); None with fewer than 12 points or when the best
+        fit is no cap (flat or curving away from ``up``).
 
     Examples
     --------
@@ -153,74 +309,45 @@ def fit_dome(x_um, y_um, z_um, up: int = 1, init: dict | None = None, robust_um:
     >>> round(d["x_um"], 2), round(d["curvature_um"], 1), round(d["tilt_deg"], 2)
     (5.0, 40.0, 0.0)
     """
-    from scipy.optimize import least_squares
-
-    x = np.asarray(x_um, float)
-    y = np.asarray(y_um, float)
-    z = np.asarray(z_um, float)
+    x = np.asarray(x_um, float).ravel()
+    y = np.asarray(y_um, float).ravel()
+    z = np.asarray(z_um, float).ravel()
     ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(z)
-    x, y, z = x[ok], y[ok], z[ok]
+    if not ok.all():
+        x, y, z = x[ok], y[ok], z[ok]
     if len(x) < 12:
         return None
-    if len(x) > 500:
-        sel = np.linspace(0, len(x) - 1, 500).astype(int)
+    if len(x) > _DOME_FIT_POINTS:
+        sel = np.linspace(0, len(x) - 1, _DOME_FIT_POINTS).astype(int)
         x, y, z = x[sel], y[sel], z[sel]
-    starts = []
-    if init is not None and init.get("curvature_um", 0) > 0:
-        a = _tilt_vector(init["tilt_deg"], init["tilt_direction_deg"])
-        starts.append([init["x_um"], init["y_um"], init["z_um"], math.log(init["curvature_um"]), a[0], a[1]])
-    # quadratic graph fit: top point and curvature
-    mx, my = x.mean(), y.mean()
-    a_mat = np.column_stack([np.ones_like(x), x - mx, y - my, (x - mx) ** 2 + (y - my) ** 2])
-    coef, *_ = np.linalg.lstsq(a_mat, up * z, rcond=None)
-    c3 = coef[3] if coef[3] < -1e-6 else -1e-3
-    tx, ty = mx - coef[1] / (2 * c3), my - coef[2] / (2 * c3)
-    tz = up * (coef[0] - coef[1] ** 2 / (4 * c3) - coef[2] ** 2 / (4 * c3))
-    rc0 = min(max(-1.0 / (2 * c3), 1.0), 1e4)
-    for tilt in ((0.0,) if starts else (0.0, 12.0)):
-        dirs = [0.0] if tilt == 0 else [0.0, 90.0, 180.0, 270.0]
-        for psi in dirs:
-            a = _tilt_vector(tilt, psi)
-            # the summit lies R·tan(tilt) from the top point, towards the tilt direction
-            shift = rc0 * math.tan(math.radians(tilt))
-            u = a / max(np.hypot(*a), 1e-12) if tilt else np.zeros(2)
-            starts.append([tx + shift * u[0], ty + shift * u[1], tz, math.log(rc0), a[0], a[1]])
-    def jacobian(params, x, y, z, up):
-        # analytic derivatives of _dome_residual (the residual r = pa + cb·pz + ρ²/(2·Rc))
-        sx, sy, sz, log_rc, ax, ay = params
-        rc = math.exp(log_rc)
-        a2 = ax * ax + ay * ay
-        if a2 >= 0.99:
-            return np.zeros((len(x), 6))
-        cb = math.sqrt(1.0 - a2)
-        px, py, pz = x - sx, y - sy, up * (z - sz)
-        pa = px * ax + py * ay
-        rho2 = px * px + py * py - pa * pa - 2.0 * cb * pz * pa + a2 * pz * pz
-        k = 1.0 / (2.0 * rc)
-        d_px = ax + k * (2 * px - 2 * pa * ax - 2 * cb * pz * ax)
-        d_py = ay + k * (2 * py - 2 * pa * ay - 2 * cb * pz * ay)
-        d_pz = cb + k * (-2 * cb * pa + 2 * a2 * pz)
-        dcb_ax, dcb_ay = -ax / cb, -ay / cb
-        d_ax = px + dcb_ax * pz + k * (-2 * pa * px - 2 * dcb_ax * pz * pa - 2 * cb * pz * px + 2 * ax * pz * pz)
-        d_ay = py + dcb_ay * pz + k * (-2 * pa * py - 2 * dcb_ay * pz * pa - 2 * cb * pz * py + 2 * ay * pz * pz)
-        return np.column_stack([-d_px, -d_py, -up * d_pz, -rho2 * k, d_ax, d_ay])
-
-    best = None
-    for p0 in starts:
-        try:
-            fit = least_squares(_dome_residual, p0, jac=jacobian, args=(x, y, z, up), loss="soft_l1",
-                                f_scale=robust_um, x_scale=[10, 10, 5, 0.3, 0.1, 0.1], max_nfev=100)
-        except ValueError:
-            continue
-        if best is None or fit.cost < best.cost:
-            best = fit
-    if best is None:
+    up = 1 if up >= 0 else -1
+    # centred coordinates, z turned so that the dome faces +z
+    mx, my, mz = float(x.mean()), float(y.mean()), float(z.mean())
+    q = np.stack([x - mx, y - my, up * (z - mz)])
+    tilts = [np.zeros(2)] + [_tilt_vector(b, psi) for b in _DOME_START_TILTS for psi in (0.0, 90.0, 180.0, 270.0)]
+    if init is not None and np.isfinite(init.get("tilt_deg", np.nan)) and 0 <= init["tilt_deg"] < 80:
+        tilts.append(_tilt_vector(init["tilt_deg"], init.get("tilt_direction_deg", 0.0)))
+    tilts = np.array(tilts)
+    starts = _dome_starts(q, tilts, robust_um)
+    if starts is None:
         return None
-    sx, sy, sz, log_rc, ax, ay = best.x
+    c, cost = starts
+    k = int(np.argmin(np.where(np.isfinite(cost), cost, np.inf)))
+    p, r = _dome_newton(np.concatenate([c[k], tilts[k]]), q, robust_um)
+    c0, c1, c2, c3, ax, ay = (float(v) for v in p)
+    if not (np.all(np.isfinite(p)) and c3 < 0):
+        return None
+    # summit: (U, V) = −(c1, c2)/(2·c3), W = c0 − (c1² + c2²)/(4·c3), back to image axes
+    us, vs = -c1 / (2 * c3), -c2 / (2 * c3)
+    ws = c0 - (c1 * c1 + c2 * c2) / (4 * c3)
+    cb = math.sqrt(1.0 - ax * ax - ay * ay)
+    k1 = (ax * us + ay * vs) / (1.0 + cb)
+    sx = us - ax * k1 + ws * ax
+    sy = vs - ay * k1 + ws * ay
+    sz = cb * ws - (ax * us + ay * vs)
     sb = min(math.hypot(ax, ay), 0.99)
-    res = _dome_residual(best.x, x, y, z, up)
-    mad = 1.4826 * float(np.median(np.abs(res - np.median(res))))
-    return {"x_um": float(sx), "y_um": float(sy), "z_um": float(sz), "curvature_um": float(math.exp(log_rc)),
+    mad = 1.4826 * float(np.median(np.abs(r - np.median(r))))
+    return {"x_um": mx + sx, "y_um": my + sy, "z_um": mz + up * sz, "curvature_um": -1.0 / (2 * c3),
             "tilt_deg": float(math.degrees(math.asin(sb))),
             "tilt_direction_deg": float(np.mod(math.degrees(math.atan2(-ay, ax)), 360.0)) if sb > 0 else 0.0,
             "up": int(up), "rms_um": mad, "n": int(len(x))}

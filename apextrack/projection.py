@@ -14,6 +14,7 @@ of every primordium can be reported and the dome fitted (:mod:`apextrack.apex`).
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -107,8 +108,9 @@ class HeightMap:
             return np.where(den > 0.5, num / np.maximum(den, 1e-9), np.nan).astype(np.float32)
 
 
-def _bin(volume: np.ndarray, b: int) -> np.ndarray:
-    """Mean over ``b × b`` lateral blocks, float32, from a volume of any real dtype.
+def _bin_sums(volume: np.ndarray, b: int, out: np.ndarray) -> None:
+    """Sums over ``b × b`` lateral blocks of a volume of any real dtype, written into ``out``
+    (float32, shape ``(Z, Y // b, X // b)``, any view).
 
     Slice by slice (a slice stays in cache): rows are summed first, then columns on the
     ``b``-times smaller result, in an exact integer accumulator for 8- and 16-bit data (float32
@@ -118,10 +120,10 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
     my, mx = (ny // b) * b, (nx // b) * b
     v = volume[:, :my, :mx]
     if b == 1:
-        return np.asarray(v, np.float32)
+        out[...] = v
+        return
     kind, size = v.dtype.kind, v.dtype.itemsize
     acc_t = np.uint32 if (kind in "ub" and size <= 2) else np.int32 if (kind == "i" and size <= 2) else np.float32
-    out = np.empty((nz, my // b, mx // b), np.float32)
     if v.dtype == np.dtype(np.uint16) and b % 2 == 0 and v.strides[-1] == 2:
         # 16-bit data: adjacent pixels summed as the two halves of a 32-bit word (exact; the
         # sums of b² pixels fit in 32 bits), then rows, then the remaining pairs of columns
@@ -137,8 +139,7 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
             for i in range(2, h):
                 cols += acc[:, i::h]
             out[z] = cols
-        out *= np.float32(1.0 / (b * b))
-        return out
+        return
     acc = np.empty((my // b, mx), acc_t)
     for z in range(nz):
         s = v[z]
@@ -149,8 +150,73 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
         for i in range(2, b):
             cols += acc[:, i::b]
         out[z] = cols
+
+
+def _bin(volume: np.ndarray, b: int) -> np.ndarray:
+    """Mean over ``b × b`` lateral blocks, float32, from a volume of any real dtype
+    (:func:`_bin_sums` divided by ``b²``)."""
+    nz, ny, nx = volume.shape
+    if b == 1:
+        return np.asarray(volume, np.float32)
+    out = np.empty((nz, ny // b, nx // b), np.float32)
+    _bin_sums(volume, b, out)
     out *= np.float32(1.0 / (b * b))
     return out
+
+
+# the lateral smoothing of the binned volume: a Gaussian of σ = 1 cell, truncated at 4 σ (the
+# kernel of scipy.ndimage.gaussian_filter with its defaults)
+_SMOOTH_RADIUS = 4
+_SMOOTH_WEIGHTS = np.exp(-0.5 * np.arange(-_SMOOTH_RADIUS, _SMOOTH_RADIUS + 1) ** 2.0)
+_SMOOTH_WEIGHTS = (_SMOOTH_WEIGHTS / _SMOOTH_WEIGHTS.sum()).astype(np.float32)
+_PAD = _SMOOTH_RADIUS  # margin of the padded layout of the binned volume
+
+
+def _binned_smoothed(volume: np.ndarray, b: int, group: int = 4) -> np.ndarray:
+    """The volume binned laterally (``b × b`` block means) and smoothed along y and x by a
+    Gaussian of σ = 1 cell (radius 4 cells, edges extended as 'nearest'), in float32.
+
+    Returned in a padded layout, shape ``(Z, Yb + 2·r, Xb + 2·r)`` with ``r`` =
+    :data:`_PAD`, contiguous: the result is ``[:, r:-r, r:-r]``, the margins hold values of no
+    meaning. The binned sums are written straight into the padded array, and the filter runs
+    on it as one flat array (neighbours ``k`` apart along x, ``k`` padded rows apart along y),
+    so that every pass is one contiguous sweep; the margins absorb what crosses the end of a
+    row or a slice. ``group`` slices at a time are binned and smoothed, so that they stay in
+    the cache between the passes.
+    """
+    nz, ny, nx = volume.shape
+    yb, xb = ny // b, nx // b
+    r = _PAD
+    buf = np.empty((nz, yb + 2 * r, xb + 2 * r), np.float32)
+    out = np.zeros_like(buf)
+    row = buf.shape[2]
+    size = buf.shape[1] * row
+    src, dst = buf.reshape(-1), out.reshape(-1)
+    tmp = np.empty(group * size, np.float32)
+    mean = np.float32(1.0 / (b * b))
+    for z0 in range(0, nz, group):
+        z1 = min(z0 + group, nz)
+        g = buf[z0:z1]
+        _bin_sums(volume[z0:z1], b, g[:, r:-r, r:-r])
+        g[:, r:-r, :r] = g[:, r:-r, r:r + 1]           # 'nearest': columns, then whole rows
+        g[:, r:-r, -r:] = g[:, r:-r, -r - 1:-r]
+        g[:, :r] = g[:, r:r + 1]
+        g[:, -r:] = g[:, -r - 1:-r]
+        # the rows r … r + yb − 1 of the group's slices (all that the cells need), along y into
+        # out (block sums → means folded into the weights), then along x back into buf: along
+        # y only the group's own rows are read, along x what lies beyond a row's end reaches
+        # only margins
+        i0, i1 = z0 * size + r * row, z1 * size - r * row
+        for step, a, c, w in ((row, src, dst, _SMOOTH_WEIGHTS * mean), (1, dst, src, _SMOOTH_WEIGHTS)):
+            o = c[i0:i1]
+            t = tmp[:i1 - i0]
+            np.multiply(a[i0:i1], w[r], out=o)
+            for k in range(1, r + 1):
+                d = k * step
+                np.add(a[i0 - d:i1 - d], a[i0 + d:i1 + d], out=t)
+                t *= w[r + k]
+                o += t
+    return buf
 
 
 def dome_side(binned: np.ndarray) -> int:
@@ -177,6 +243,52 @@ def dome_side(binned: np.ndarray) -> int:
     if good.sum() >= 6:
         coef, *_ = np.linalg.lstsq(a[good], zc[good], rcond=None)
     return 1 if coef[3] <= 0 else -1
+
+
+@functools.lru_cache(maxsize=8)
+def _sample_index(shape: tuple[int, int, int], m: int, side: int) -> np.ndarray:
+    """Flat indices into a padded volume (margin ``m``) of every k-th cell, k = cells // 65536,
+    the cells counted along x, then y, then z from the dome's side (from the last slice when
+    ``side`` is −1). Kept for the next frame of the same shape (read-only)."""
+    nz, yp, xp = shape
+    yb, xb = yp - 2 * m, xp - 2 * m
+    n = nz * yb * xb
+    i = np.arange(0, n, max(1, n // 65536))
+    z, rem = np.divmod(i, yb * xb)
+    y, x = np.divmod(rem, xb)
+    if side == -1:
+        z = nz - 1 - z
+    idx = (z * yp + y + m) * xp + x + m
+    idx.flags.writeable = False
+    return idx
+
+
+def _percentiles(a: np.ndarray, q) -> list[float]:
+    """Percentiles of a 1D array as :func:`numpy.percentile` gives them (linear interpolation
+    between order statistics).
+
+    One selection per percentile, the largest first, each on the part of the array left of the
+    previous one; the order statistic next to a selected one is the minimum of what lies right
+    of it."""
+    n = a.size
+    pos = np.asarray(q, float) / 100.0 * (n - 1)
+    lo = np.floor(pos).astype(np.intp)
+    work = np.array(a, copy=True).reshape(-1)
+    stat: dict[int, float] = {}
+    end = n
+    for k in sorted({int(v) for v in lo}, reverse=True):
+        seg = work[:end]
+        seg.partition(k)
+        stat[k] = float(seg[k])
+        if k + 1 < end:
+            stat[k + 1] = float(seg[k + 1:].min())
+        end = k
+    out = []
+    for p, k in zip(pos, lo):
+        a_lo = stat[int(k)]
+        a_hi = stat.get(int(k) + 1, a_lo)
+        out.append(a_lo + (a_hi - a_lo) * float(p - k))
+    return out
 
 
 def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
@@ -216,10 +328,13 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     nz, ny, nx = vol.shape
     b = max(1, int(round(cell_um / pixel_size_um)))
     b = min(b, max(1, min(ny, nx) // 4))
-    v = _bin(vol, b)
-    v = ndi.gaussian_filter(v, (0, 1.0, 1.0), mode="nearest")
+    # binned and smoothed, in a padded layout: the cells are [:, m:-m, m:-m]; every step below
+    # works on the whole padded array (contiguous sweeps) and the margins are cut off at the end
+    v = _binned_smoothed(vol, b)
+    m = _PAD
+    cells = (slice(m, -m), slice(m, -m))
     if up in ("auto", None):
-        side = dome_side(v)
+        side = dome_side(np.ascontiguousarray(v[(slice(None),) + cells]))
     elif up in ("+z", 1):
         side = 1
     elif up in ("-z", -1):
@@ -227,13 +342,15 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     else:
         raise ValueError(f"up must be 'auto', '+z' or '-z', not {up!r}")
     p = v if side == 1 else v[::-1]
-    sample = p.ravel()[:: max(1, p.size // 65536)]
-    bg = float(np.percentile(sample, 5))
+    # background and noise of the volume from every k-th cell (in the order of the cells
+    # along x, y, then z from the dome's side), some 65536 of them
+    sample = v.reshape(-1)[_sample_index(v.shape, m, side)]
+    bg, med = _percentiles(sample, (5.0, 50.0))
+    noise = 1.4826 * _percentiles(np.abs(sample - np.float32(med)), (50.0,))[0] + 1e-9
     top = p.max(axis=0)
-    noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) + 1e-9
     # the level a peak must reach: relative to the column's own top, but never above the
     # typical column top, so that a bright deep spot does not hide the surface above it
-    typical = float(np.percentile(top, 75))
+    typical = _percentiles(top[cells].ravel(), (75.0,))[0]
     thr = bg + rel_level * (np.minimum(top, typical) - bg)
     # peaks: not lower than either neighbour along z (edges count as one-sided peaks)
     peak = p >= thr[None]
@@ -242,7 +359,9 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     # outermost = highest index on the dome's side: the largest (slice + 1) among the peaks,
     # a maximum over slices of uint8 ranks (far cheaper than an argmax along the z axis)
     if nz < 255:
-        rank = (peak.view(np.uint8) * np.arange(1, nz + 1, dtype=np.uint8)[:, None, None]).max(axis=0)
+        rank = peak.view(np.uint8)
+        rank *= np.arange(1, nz + 1, dtype=np.uint8)[:, None, None]
+        rank = rank.max(axis=0)
         has_peak = rank > 0
         idx = np.where(has_peak, rank.astype(np.intp) - 1, nz - 1)
     else:
@@ -258,7 +377,7 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
         c0 = p[k, iy, ix] - bg
         c = p[k + 1, iy, ix] - bg
         pos = (a > 0) & (c0 > 0) & (c > 0)
-        with np.errstate(invalid="ignore", divide="ignore"):
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
             la, lb, lc = np.log(np.maximum(a, 1e-12)), np.log(np.maximum(c0, 1e-12)), np.log(np.maximum(c, 1e-12))
             den = la - 2 * lb + lc
             off_log = np.where(den < 0, 0.5 * (la - lc) / den, 0.0)
@@ -270,8 +389,8 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
         z = np.where(interior, k + off, idx)
     if side == -1:
         z = (nz - 1) - z
-    z_um = np.where(found, z * z_step_um, np.nan)
-    return HeightMap(z_um=z_um.astype(float), bin_px=b, up=side, shape_yx=(ny, nx))
+    z_um = np.where(found, z * z_step_um, np.nan)[cells]
+    return HeightMap(z_um=np.ascontiguousarray(z_um, dtype=float), bin_px=b, up=side, shape_yx=(ny, nx))
 
 
 def shell_projection(volume: np.ndarray, height: HeightMap, z_step_um: float, shell_depth_um: float) -> np.ndarray:

@@ -150,3 +150,77 @@ def test_image_stage_dome_every_k_frames_keeps_the_tilt(tmp_path, every):
     assert len(z) >= 0.9 * len(det)
     truth_z = s.truth[s.truth.visible]["z_um"]
     assert z.between(truth_z.min() - 5.0, truth_z.max() + 5.0).all()
+
+
+def _tilted_surface_points(frame=0):
+    s = make_synthetic_stack(n_frames=frame + 1, shape_zyx=(22, 96, 96), z_step_um=1.5, tilt_deg=15,
+                             tilt_direction_deg=40, membrane=True, seed=1, drift_um_per_frame=(0.4, -0.3, 0))
+    hm = surface_height(s.data[frame][:, 1].astype(np.float32), s.z_step_um, s.pixel_size_um)
+    x, y, z = hm.points_px()
+    return x * s.pixel_size_um, y * s.pixel_size_um, z, hm.up
+
+
+def test_dome_cost_derivatives_match_numerical_derivatives():
+    # reference: scipy.differentiate.jacobian and .hessian (adaptive finite differences) of the
+    # soft-L1 cost; the fit's Newton steps use the analytic gradient and exact Hessian
+    from scipy.differentiate import hessian, jacobian
+
+    from apextrack.apex import _dome_cost_derivatives, _dome_residual, _soft_l1
+
+    rng = np.random.default_rng(2)
+    q = rng.uniform(-30, 30, (3, 200))
+    q[2] = -(q[0] ** 2 + q[1] ** 2) / 80.0 + 0.3 * q[0] + rng.normal(0, 1.0, 200)
+    p = np.array([0.4, 0.25, -0.2, -0.011, 0.2, -0.1])
+    scale = np.array([1.0, 0.1, 0.1, 0.001, 0.1, 0.1])  # steps of a size that suits each parameter
+
+    def cost(xs):
+        return np.apply_along_axis(lambda v: _soft_l1(_dome_residual(v * scale, q), 0.8), 0, xs)
+
+    c, g, h, _, r = _dome_cost_derivatives(p, q, 0.8)
+    assert c == pytest.approx(_soft_l1(r, 0.8))
+    num_g = jacobian(cost, p / scale, initial_step=0.05).df / scale
+    num_h = hessian(cost, p / scale, initial_step=0.05).ddf / np.outer(scale, scale)
+    np.testing.assert_allclose(g, num_g, rtol=1e-6, atol=1e-6 * np.abs(num_g).max())
+    np.testing.assert_allclose(h, num_h, rtol=1e-5, atol=1e-6 * np.abs(num_h).max())
+
+
+def test_dome_fit_reaches_the_least_squares_minimum():
+    # reference: scipy.optimize.least_squares (loss="soft_l1", tight tolerances) on the model as
+    # the docstring states it: algebraic distance along the axis of a paraboloid of revolution,
+    # parametrised by summit, ln Rc and the horizontal components of the axis; started from the
+    # rendered truth, on the rendered tilted stack's height map (primordia bulges included)
+    from scipy.optimize import least_squares
+
+    x, y, z, up = _tilted_surface_points()
+    assert len(x) < 1000  # all points are used by the fit
+    robust = 0.75
+
+    def resid(p):
+        sx, sy, sz, log_rc, ax, ay = p
+        cb = math.sqrt(1.0 - ax * ax - ay * ay)
+        px, py, pz = x - sx, y - sy, up * (z - sz)
+        w = px * ax + py * ay + cb * pz
+        return w + (px * px + py * py + pz * pz - w * w) / (2.0 * math.exp(log_rc))
+
+    a = math.sin(math.radians(15)) * np.array([math.cos(math.radians(40)), -math.sin(math.radians(40))])
+    ref = least_squares(resid, [40.0, 36.0, 28.0, math.log(45.0), a[0], a[1]], loss="soft_l1", f_scale=robust,
+                        x_scale=[10, 10, 5, 0.3, 0.1, 0.1], ftol=1e-14, xtol=1e-14, gtol=1e-14, max_nfev=2000)
+    d = fit_dome(x, y, z, up=up, robust_um=robust)
+    sx, sy, sz, log_rc, ax, ay = ref.x
+    assert (d["x_um"], d["y_um"], d["z_um"]) == pytest.approx((sx, sy, sz), abs=1e-4)
+    assert d["curvature_um"] == pytest.approx(math.exp(log_rc), rel=1e-5)
+    assert d["tilt_deg"] == pytest.approx(math.degrees(math.asin(math.hypot(ax, ay))), abs=1e-4)
+    assert d["tilt_direction_deg"] == pytest.approx(math.degrees(math.atan2(-ay, ax)) % 360, abs=1e-3)
+
+
+def test_dome_fit_does_not_depend_on_the_previous_fit():
+    # common practice, no source: frames are measured independently, so a fit must be the same
+    # with no previous fit, another frame's fit, or a poor one (tilted 25° the other way) as init
+    x, y, z, up = _tilted_surface_points(frame=2)
+    alone = fit_dome(x, y, z, up=up, robust_um=0.75)
+    other = fit_dome(*_tilted_surface_points(frame=0)[:3], up=up, robust_um=0.75)
+    poor = dict(other, tilt_deg=25.0, tilt_direction_deg=220.0, x_um=10.0, y_um=60.0, curvature_um=300.0)
+    keys = ["x_um", "y_um", "z_um", "curvature_um", "tilt_deg", "tilt_direction_deg"]
+    for init in (other, poor):
+        d = fit_dome(x, y, z, up=up, init=init, robust_um=0.75)
+        assert [d[k] for k in keys] == pytest.approx([alone[k] for k in keys], abs=1e-6)

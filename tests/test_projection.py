@@ -86,3 +86,47 @@ def test_lateral_binning_is_the_exact_block_mean_of_16_bit_data(b):
     np.testing.assert_allclose(_bin(v, b), ref, rtol=1e-6)
     np.testing.assert_array_equal(_bin(v, b), _bin(v.astype(np.int32), b))
 
+
+
+@pytest.mark.parametrize("b, dtype, shape", [(4, np.uint16, (6, 64, 72)), (3, np.uint16, (5, 61, 83)),
+                                            (2, np.float32, (4, 40, 37)), (1, np.uint8, (3, 20, 24)),
+                                            (4, np.uint16, (2, 9, 14))])
+def test_binned_volume_is_smoothed_like_scipy_gaussian_filter(b, dtype, shape):
+    # reference: scipy.ndimage.gaussian_filter (σ = 1 cell along y and x, its default truncation
+    # at 4 σ, mode "nearest") of the b × b block means; ours runs in float32 on a padded layout
+    from scipy import ndimage as ndi
+
+    from apextrack.projection import _PAD, _bin, _binned_smoothed
+
+    rng = np.random.default_rng(b)
+    hi = 255 if dtype == np.uint8 else 65535
+    v = rng.integers(0, hi + 1, size=shape).astype(dtype)
+    ref = ndi.gaussian_filter(_bin(v, b).astype(np.float64), (0, 1.0, 1.0), mode="nearest")
+    m = _PAD
+    for group in (1, 4, 100):  # slices smoothed a few at a time must not change the cells
+        got = _binned_smoothed(v, b, group)[:, m:-m, m:-m]
+        assert got.shape == ref.shape
+        np.testing.assert_allclose(got, ref, rtol=2e-6, atol=1e-6 * hi)
+
+
+def test_percentiles_match_numpy():
+    # reference: numpy.percentile (default linear interpolation)
+    from apextrack.projection import _percentiles
+
+    rng = np.random.default_rng(4)
+    for n in (1, 2, 7, 1000, 65537):
+        a = rng.normal(size=n).astype(np.float32)
+        np.testing.assert_allclose(_percentiles(a, (5.0, 50.0, 75.0)), np.percentile(a, [5.0, 50.0, 75.0]),
+                                   rtol=1e-6, atol=1e-7)
+
+
+def test_height_map_of_a_dome_facing_down_is_the_mirror_of_the_upright_one_for_large_volumes():
+    # common practice, no source: flipping the stack along z mirrors the heights, also in a
+    # volume of more than 65536 cells (background and noise from a sample of them)
+    s = make_synthetic_stack(n_frames=1, shape_zyx=(24, 240, 240), z_step_um=1.0, pixel_size_um=0.8, seed=2)
+    v = np.asarray(s.data[0])
+    up = surface_height(v, 1.0, 0.8, up="+z")
+    down = surface_height(v[::-1], 1.0, 0.8, up="-z")
+    assert 24 * 80 * 80 > 65536 and up.up == 1 and down.up == -1
+    np.testing.assert_array_equal(np.isfinite(up.z_um), np.isfinite(down.z_um))
+    assert np.nanmax(np.abs(up.z_um + down.z_um - 23.0)) < 1e-4
