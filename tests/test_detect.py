@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy.special import erf
 
-from apextrack.detect import (apex_region, detect_blobs, detect_blobs_3d, log_scale_space, pyramid_log,
+from apextrack.detect import (apex_region, detect_blobs, detect_blobs_3d, log_scale_space, log_stack, pyramid_log,
                               scales_px)
 
 
@@ -220,3 +220,70 @@ def test_apex_region_search_finds_the_same_blobs_as_the_whole_frame():
     assert len(cropped) == int(inside.sum())
     ref = whole[inside].reset_index(drop=True)
     np.testing.assert_allclose(cropped[["x_px", "y_px"]].to_numpy(), ref[["x_px", "y_px"]].to_numpy(), atol=0.02)
+
+
+def test_log_stack_on_an_odd_sized_coarse_grid_matches_the_full_resolution_log():
+    # reference library: scipy.ndimage.gaussian_laplace (via log_scale_space). A 96 px image
+    # with σ up to 6 is padded to 150 px, a coarse grid of 75 (odd) rows and columns, whose
+    # spectrum has one more non-negative than negative frequency row
+    yy, xx = np.mgrid[:96, :96]
+    img = (80 * np.exp(-((xx - 40) ** 2 + (yy - 50) ** 2) / (2 * 3.0 ** 2))).astype(np.float32)
+    sig = np.array([3.0, 6.0])
+    f, cube = log_stack(img, sig)
+    full = log_scale_space(img, sig)
+    assert f == 2 and cube.shape == (2, 48, 48)
+    np.testing.assert_allclose(cube, full[:, ::2, ::2], atol=0.02 * float(np.abs(full).max()))
+
+
+def test_scale_is_found_alike_on_grids_of_different_spacing():
+    # Lindeberg 1998, IJCV 30: the scale-normalised LoG of a Gaussian of s.d. s peaks at σ = s.
+    # These scales lie on grids decimated 2, 4 and 8 times; blobs between them, at arbitrary
+    # subpixel positions, must get their own s whichever grids their neighbouring scales are on
+    rng = np.random.default_rng(6)
+    sig = np.geomspace(2.5, 10.0, 7)
+    yy, xx = np.mgrid[:160, :160]
+    for s in (3.0, 4.8, 6.5, 8.5):
+        for _ in range(3):
+            x0, y0 = rng.uniform(70, 90, 2)
+            img = 200 * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * s ** 2)) + 10
+            img = img + rng.normal(0, 0.5, img.shape)
+            df = detect_blobs(img, sig, min_snr=3)
+            assert len(df) == 1
+            assert df.sigma_px[0] == pytest.approx(s, rel=0.06)
+            assert abs(df.x_px[0] - x0) < 0.05 and abs(df.y_px[0] - y0) < 0.05
+
+
+def test_apex_region_closing_matches_reference_morphology():
+    # reference library: scipy.ndimage (distance transform, binary closing with a disc, hole
+    # filling, labelling) applied as apex_region's docstring describes, on a view whose bright
+    # pieces are joined only by the closing
+    from scipy import ndimage as ndi
+    from skimage.filters import threshold_otsu
+
+    rng = np.random.default_rng(8)
+    yy, xx = np.mgrid[:512, :512]
+    view = np.zeros((512, 512))
+    for a in np.linspace(0, 2 * np.pi, 9)[:-1]:
+        view += 100 * np.exp(-((xx - 256 - 90 * np.cos(a)) ** 2 + (yy - 250 - 90 * np.sin(a)) ** 2) / (2 * 14.0 ** 2))
+    view += 100 * np.exp(-((xx - 60) ** 2 + (yy - 450) ** 2) / (2 * 10.0 ** 2))      # debris
+    view = (view + rng.normal(0, 1, view.shape)).astype(np.float32)
+    close = 25.0
+    got = apex_region(view, close_px=close)
+    f = 4
+    img = ndi.gaussian_filter(view[::f, ::f], 3.0 / f)
+    bg = float(np.percentile(img, 2))
+    mask = img > bg + 0.25 * (threshold_otsu(img) - bg)
+    rad = close / f
+    p = int(np.ceil(rad)) + 1
+    padded = np.pad(mask, p)
+    grown = ndi.distance_transform_edt(~padded) <= rad
+    closed = (ndi.distance_transform_edt(grown) > rad)[p:-p, p:-p] | mask
+    filled = ndi.binary_fill_holes(closed)
+    labels, n = ndi.label(filled)
+    sizes = ndi.sum(filled, labels, index=np.arange(1, n + 1))
+    region = labels == 1 + int(np.argmax(sizes))
+    ry, rx = np.nonzero(region)
+    cx, cy = rx.mean(), ry.mean()
+    radius = np.percentile(np.hypot(rx - cx, ry - cy), 95) + 0.5
+    assert n >= 2                                   # the debris stays apart
+    assert got == pytest.approx((cx * f, cy * f, radius * f), abs=1e-9)
