@@ -10,8 +10,11 @@ Pipeline of :func:`detect_blobs` (2D top view):
    negative LoG ``-σ²∇²G_σ`` and is transformed back on a grid decimated by the largest power
    of two ``f`` that keeps ≥ 1.25 coarse pixels per σ *of that scale* (keeping only the band
    that grid holds is an ideal anti-alias filter; what it drops is under 1 % of the peak
-   response) — so the coarse scales cost a quarter of the fine ones. Only the band the finest
-   grid holds is computed in the forward transform. This and the steps below are what make
+   response) — so the coarse scales cost a quarter of the fine ones. Each grid is placed
+   symmetrically in the frame (it starts ``((n − 1) mod f) / 2`` pixels in, by a phase turn of
+   the spectrum), so a frame turned by quarter turns or mirrored is sampled at the turned
+   points and gives the turned blobs. Only the band the finest grid holds is computed in the
+   forward transform. This and the steps below are what make
    the detector many times faster than evaluating every scale at full resolution (see
    ``benchmarks/bench_image.py``).
 2. **Candidates.** Local maxima in space (3×3, on each scale's grid) above an adaptive threshold
@@ -230,10 +233,11 @@ def _work(name: str, shape: tuple, dtype) -> np.ndarray:
     return buf[:size].reshape(shape)
 
 
-@functools.lru_cache(maxsize=8)
+@functools.lru_cache(maxsize=32)
 def _log_transfer(my: int, mx: int, f: int, sigmas: tuple) -> tuple:
     """Transfer functions of ``-σ²∇²G_σ`` on the half spectrum of an ``my × mx`` grid of spacing
-    ``f`` (float32, read-only; cached, since every frame of a stack has the same size)."""
+    ``f`` (float32, read-only; cached: the frames of a stack, and their apex regions padded to
+    fast FFT lengths, come in a few sizes)."""
     from scipy import fft as sfft
 
     wy = (2 * np.pi * sfft.fftfreq(my, d=f)).astype(np.float32)
@@ -249,7 +253,7 @@ def _log_transfer(my: int, mx: int, f: int, sigmas: tuple) -> tuple:
     return tuple(out)
 
 
-@functools.lru_cache(maxsize=16)
+@functools.lru_cache(maxsize=32)
 def _phase(my: int, mx: int, f: int, dy: float, dx: float) -> np.ndarray:
     """``exp(i(ω_y·dy + ω_x·dx))`` on the half spectrum of an ``my × mx`` grid of spacing ``f``
     (complex64, read-only): multiplied into a spectrum it samples the image ``dy, dx`` fine pixels
