@@ -202,6 +202,13 @@ def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool 
     return row
 
 
+def _experiment_report_task(experiment: pd.DataFrame, out: str, title: str, expected_angle_deg: float) -> str:
+    """Write ``experiment_report.html`` (in a worker); returns its path."""
+    from .report import write_experiment_report
+
+    return str(write_experiment_report(experiment, out, title=title, expected_angle_deg=expected_angle_deg))
+
+
 class _TaskFailed(Exception):
     """A block of frames of this stack could not be measured (the message is the one line)."""
 
@@ -422,19 +429,26 @@ def run_batch(source, out: str | Path, settings: Settings | dict | None = None, 
                 (bar.write(msg, file=err) if bar is not None else print(msg, file=err))
         if bar is not None:
             bar.close()
+        df = experiment_table([r for r in rows if r is not None])
+        write_table(df, out / "experiment.csv")
+        rep = None
+        if report:
+            # drawn by a worker, whose plotting library is loaded already (the stacks' reports);
+            # here when the cluster cannot (e.g. it does not see this folder)
+            title = f"apextrack experiment: {out.name}"
+            try:
+                rep = Path(client.submit(_experiment_report_task, df, str(out.resolve()), title,
+                                         s.expected_angle_deg, pure=False,
+                                         key=f"apextrack-experiment-report-{time.time_ns()}").result())
+            except Exception:
+                from .report import write_experiment_report
+
+                rep = write_experiment_report(df, out, title=title, expected_angle_deg=s.expected_angle_deg)
     finally:
         if own_client:
             client.close()
             if cluster is not None:
                 cluster.close()
-    df = experiment_table([r for r in rows if r is not None])
-    write_table(df, out / "experiment.csv")
-    rep = None
-    if report:
-        from .report import write_experiment_report
-
-        rep = write_experiment_report(df, out, title=f"apextrack experiment: {out.name}",
-                                      expected_angle_deg=s.expected_angle_deg)
     failed = df.loc[df["status"] != "ok", "stack"].tolist()
     return BatchResult(experiment=df, out=out, dashboard=dashboard, report=rep, failed=failed)
 

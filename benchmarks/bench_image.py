@@ -232,9 +232,9 @@ def render(res: dict, before: dict | None) -> str:
         "## Image stage",
         "",
         f"Recorded by `benchmarks/bench_image.py` on {res['platform']}, Python {res['python']}, "
-        f"{res['cpus']} CPU cores, no GPU, **shared with other developers' work** (load average "
-        f"{res['load_before'][0]:.1f} before and {res['load_after'][0]:.1f} after the run, on 2 cores: every "
-        f"time is inflated, ratios are taken within one run). Each figure is the best of {res['repeats']} runs.",
+        f"{res['cpus']} CPU cores, no GPU (load average {res['load_before'][0]:.1f} before and "
+        f"{res['load_after'][0]:.1f} after the run; times on this virtual machine vary by 10–30 % from run to "
+        f"run, so ratios are taken within one run). Each figure is the best of {res['repeats']} runs.",
         "",
         f"Synthetic stack: {res['frames']} frames of {'×'.join(map(str, res['shape']))} (Z×Y×X) uint16, "
         f"{res['pixel_um']} µm/px, {res['tiff_mb']:.0f} MB TIFF in the page cache; default settings (primordium "
