@@ -131,10 +131,6 @@ class FrameMeasure:
     dome: dict | None          # fitted dome (µm, this frame's pixels × pixel size), if plausible
     fitted: bool               # the dome fit was due on this frame
 
-    @property
-    def nbytes(self) -> int:
-        return int(self.view.nbytes)
-
 
 def stack_sigmas(stack: Stack, s: Settings) -> np.ndarray:
     """The detector's Gaussian scales (pixels) for this stack's pixel size."""

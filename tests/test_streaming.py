@@ -109,8 +109,10 @@ def test_memory_mapped_stack_is_not_loaded_whole(memmap_run):
 
 def test_peak_memory_with_two_threads_does_not_grow_with_frames(memmap_run):
     # two threads hold one more frame in flight (its volume, float32 intermediates and the
-    # second thread's detector work arrays): a fixed amount, whatever the number of frames
-    assert memmap_run["peak16_2threads"] - memmap_run["peak4_2threads"] < 2 * memmap_run["frame_bytes"], memmap_run
+    # second thread's detector work arrays) and a top view being warped: a bounded amount,
+    # whose peak depends on how the threads happen to overlap (so up to a few frames more on
+    # some runs), never the 12 frames (6 MB) more that holding the frames would take
+    assert memmap_run["peak16_2threads"] - memmap_run["peak4_2threads"] < 4 * memmap_run["frame_bytes"], memmap_run
 
 
 def test_peak_memory_does_not_grow_with_frames(memmap_run):
