@@ -223,9 +223,9 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
                    done: dict[int, FrameMeasure] | None = None, threads: int | None = None) -> Iterator[FrameMeasure]:
     """The measurements of ``frames`` (default: all), yielded in frame order.
 
-    With more than one thread (``threads``, default ``settings.threads``; 0 = one per core) a
-    few frames ahead are measured in a thread pool; at most ``threads + 1`` frames are in
-    flight, so memory stays bounded. ``done`` holds frames already measured.
+    With more than one thread (``threads``, default ``settings.threads``; 0 = one per core) the
+    next frames are measured in a thread pool; at most ``threads`` frames are in flight, so
+    memory stays bounded. ``done`` holds frames already measured.
     """
     frames = list(range(stack.n_frames) if frames is None else frames)
     done = dict(done or {})

@@ -380,9 +380,10 @@ def warp_view(view: np.ndarray, matrix: np.ndarray, order: int = 1) -> np.ndarra
     """Resample a frame's top view into frame 0's frame of reference: ``out[y, x]`` is the view
     at ``matrix @ (x, y, 1)`` (``matrix``: frame-0 ``(x, y, 1)`` → the frame's own, e.g.
     :attr:`Registrar.current_matrix`). Pixels that come from outside the frame take the frame's
-    lowest value. ``order`` 1 is bilinear (done here in float32: the values of
-    ``scipy.ndimage.affine_transform`` with ``order=1`` to rounding, at about half the cost and
-    without holding the interpreter lock); other orders use scipy."""
+    lowest value. ``order`` 1 is bilinear, done here in float32 with numpy array operations
+    (which release the interpreter lock, so the warp can run beside frames being measured in
+    other threads): the values of ``scipy.ndimage.affine_transform`` with ``order=1`` to
+    rounding. Other orders use scipy."""
     view = np.asarray(view, np.float32)
     m = np.asarray(matrix, float)
     if np.allclose(m, np.eye(3)):

@@ -128,3 +128,23 @@ def test_sudden_jump_falls_back_to_phase_correlation(monkeypatch):
     x0, y0 = np.array([12.0, 50.5]), np.array([30.0, 70.25])
     xr, yr = reg.to_reference(*reg.from_reference(x0, y0))
     assert np.allclose(xr, x0) and np.allclose(yr, y0)
+
+
+@pytest.mark.parametrize("angle_deg, shift", [(7.0, (12.3, -5.7)), (-31.0, (-40.2, 17.9)), (90.0, (0.0, 0.0)),
+                                              (0.0, (3.0, 2.0))])
+def test_warp_view_matches_scipy_affine_transform(angle_deg, shift):
+    # reference: scipy.ndimage.affine_transform, bilinear (order=1), constant outside the frame
+    from scipy import ndimage as ndi
+
+    from apextrack.register import warp_view
+
+    rng = np.random.default_rng(4)
+    view = ndi.gaussian_filter(rng.random((61, 64)), 2).astype(np.float32)
+    a = np.radians(angle_deg)
+    m = np.array([[np.cos(a), np.sin(a), shift[0]], [-np.sin(a), np.cos(a), shift[1]], [0.0, 0.0, 1.0]])
+    ours = warp_view(view, m)
+    ref = ndi.affine_transform(view, np.array([[m[1, 1], m[1, 0]], [m[0, 1], m[0, 0]]]),
+                               offset=np.array([m[1, 2], m[0, 2]]), order=1, mode="constant",
+                               cval=float(view.min()))
+    assert ours.dtype == np.float32 and ours.shape == view.shape
+    assert np.abs(ours - ref).max() < 1e-5
