@@ -71,8 +71,9 @@ class Stack:
     source_format: str = "array"
     _timepoint: Callable[[int], np.ndarray] | None = field(default=None, repr=False)
     _close: Callable[[], None] | None = field(default=None, repr=False)
-    #: serialises reads through a shared decoder (a zarr view of a compressed TIFF); memory maps,
-    #: arrays and one-file-per-timepoint folders are read concurrently
+    #: serialises the reads of data that is not a numpy array or memory map (zarr arrays, e.g.
+    #: the view of a compressed TIFF, whose store reads through one file handle); arrays, memory
+    #: maps and one-file-per-timepoint folders are read by several threads at once
     _lock: Any = field(default_factory=threading.Lock, repr=False, compare=False)
 
     # -- shape ----------------------------------------------------------------------------------
