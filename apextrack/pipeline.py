@@ -82,14 +82,44 @@ def resolve_settings(settings: Settings | dict | None = None, settings_file=None
     return s
 
 
-def _input_checksums(stack: Stack) -> dict[str, str]:
-    if stack.path is None:
+def _input_checksums(path, stop=None) -> dict[str, str]:
+    """SHA-256 of the input file, or of every file of an input folder."""
+    if path is None:
         return {}
-    p = Path(stack.path)
+    p = Path(path)
     if p.is_file():
-        return {p.name: sha256_file(p)}
+        return {p.name: sha256_file(p, stop=stop)}
     files = sorted(q for q in p.rglob("*") if q.is_file())
-    return {str(q.relative_to(p)): sha256_file(q) for q in files}
+    return {str(q.relative_to(p)): sha256_file(q, stop=stop) for q in files}
+
+
+class _Checksums:
+    """The input's checksums, computed in a thread of its own while the stack is analysed (the
+    file is read once more, from the page cache; hashing releases the interpreter lock)."""
+
+    def __init__(self, path):
+        import threading
+
+        self._stop = threading.Event()
+        self._value: dict[str, str] = {}
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, args=(path,), name="apextrack-checksum", daemon=True)
+        self._thread.start()
+
+    def _run(self, path) -> None:
+        try:
+            self._value = _input_checksums(path, self._stop)
+        except BaseException as exc:  # handed on by result()
+            self._error = exc
+
+    def result(self) -> dict[str, str]:
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._value
+
+    def cancel(self) -> None:
+        self._stop.set()
 
 
 @dataclass
@@ -208,6 +238,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             print(f"apextrack: warning: {w.message}", file=sys.stderr)
     stack.channel_index(s.channel)  # fail early on a bad channel
     lap("read", t0)
+    checksums = _Checksums(stack.path)
 
     staging = StagedFolder(out) if out is not None else None
     try:
@@ -280,7 +311,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             "python": platform.python_version(),
             "platform": platform.platform(),
             "input": str(stack.path) if stack.path is not None else "array",
-            "input_sha256": _input_checksums(stack),
+            "input_sha256": checksums.result(),
             "stack": {"axes": stack.axes, "shape": list(stack.shape), "dtype": str(np.dtype(stack.data.dtype)),
                       "format": stack.source_format, "pixel_size_um": list(stack.pixel_size_um),
                       "interval_h": stack.interval_h, "channel_names": stack.channel_names},
@@ -315,6 +346,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             run["wall_time_s"] = round(time.time() - t_start, 3)
         return result
     except BaseException:
+        checksums.cancel()
         if staging is not None:
             staging.abort()
         raise

@@ -338,11 +338,14 @@ def read_table(path: str | Path, table: str | None = None) -> pd.DataFrame:
     return df
 
 
-def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
-    """SHA-256 checksum of a file (read in chunks)."""
+def sha256_file(path: str | Path, chunk: int = 1 << 20, stop=None) -> str | None:
+    """SHA-256 checksum of a file (read in chunks); None when ``stop`` (a
+    :class:`threading.Event`) is set before the end."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while True:
+            if stop is not None and stop.is_set():
+                return None
             block = fh.read(chunk)
             if not block:
                 break

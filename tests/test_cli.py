@@ -38,6 +38,13 @@ def test_analyse_demo_writes_the_contract(demo_out):
         assert key in run
     (name, digest), = run["input_sha256"].items()
     assert name.endswith(".tif") and len(digest) == 64
+    # the checksum (computed in a thread of its own during the analysis) is the file's SHA-256
+    # (reference: Python's hashlib, FIPS 180-4)
+    import hashlib
+
+    from apextrack.pipeline import demo_stack_path
+
+    assert digest == hashlib.sha256(demo_stack_path().read_bytes()).hexdigest()
     prim = pd.read_csv(demo_out / "primordia.csv")
     assert prim["birth_rank"].tolist() == list(range(1, len(prim) + 1))
 
