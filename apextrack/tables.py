@@ -338,16 +338,19 @@ def read_table(path: str | Path, table: str | None = None) -> pd.DataFrame:
     return df
 
 
-def sha256_file(path: str | Path, chunk: int = 1 << 20, stop=None) -> str | None:
-    """SHA-256 checksum of a file (read in chunks); None when ``stop`` (a
+def sha256_file(path: str | Path, chunk: int = 1 << 18, stop=None) -> str | None:
+    """SHA-256 checksum of a file, read in chunks into one reused buffer (so that hashing a
+    large file holds ``chunk`` bytes, not more); None when ``stop`` (a
     :class:`threading.Event`) is set before the end."""
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
+    buf = bytearray(chunk)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as fh:
         while True:
             if stop is not None and stop.is_set():
                 return None
-            block = fh.read(chunk)
-            if not block:
+            n = fh.readinto(buf)
+            if not n:
                 break
-            h.update(block)
+            h.update(view[:n])
     return h.hexdigest()
