@@ -43,25 +43,36 @@ def _match(df, truth, tol=2.0):
     return df.iloc[i[ok]][["x_px", "y_px"]].to_numpy() - truth[ok], ok
 
 
-def test_localisation_reaches_mortensen_least_squares_precision():
-    # Mortensen, Churchman, Spudich & Flyvbjerg 2010, Nat. Methods 7:377, eq. (6): least-squares
-    # Gaussian fitting of a spot of N photons, PSF s.d. s, pixel a, background b² photons/pixel
-    # (Poisson camera, no EM gain):
-    #   var_x = (s_a² / N) · (16/9 + 8π s_a² b² / (N a²)),   s_a² = s² + a²/12
-    s, n_photons, b2, a = 1.5, 1500.0, 4.0, 1.0
+def _mortensen_bound(s: float, n_photons: float, b2: float, a: float = 1.0) -> float:
+    """Mortensen, Churchman, Spudich & Flyvbjerg 2010, Nat. Methods 7:377, eq. (6): the s.d. of
+    least-squares Gaussian fitting of a spot of N photons, PSF s.d. s, pixel a, background b²
+    photons/pixel (Poisson camera, no EM gain):
+    var_x = (s_a² / N) · (16/9 + 8π s_a² b² / (N a²)),   s_a² = s² + a²/12."""
     s_a2 = s ** 2 + a ** 2 / 12
-    bound = math.sqrt(s_a2 / n_photons * (16 / 9 + 8 * math.pi * s_a2 * b2 / (n_photons * a ** 2)))
-    rng = np.random.default_rng(1)
+    return math.sqrt(s_a2 / n_photons * (16 / 9 + 8 * math.pi * s_a2 * b2 / (n_photons * a ** 2)))
+
+
+def _spot_rmse(seed: int, rounds: int, per_row: int, spacing: int, s: float, n_photons: float, b2: float,
+               sigmas) -> float:
+    """Per-axis RMSE of the detector on Poisson images of isolated Gaussian spots; every spot
+    must be found."""
+    rng = np.random.default_rng(seed)
     errors = []
-    for _ in range(4):
-        expected, truth = _spots(rng, 6, 24, s, n_photons, b2)
+    for _ in range(rounds):
+        expected, truth = _spots(rng, per_row, spacing, s, n_photons, b2)
         img = rng.poisson(expected).astype(np.float32)
-        df = detect_blobs(img, scales_px(2.5, 7, 1.0, 5), min_snr=3)
+        df = detect_blobs(img, sigmas, min_snr=3)
         err, ok = _match(df, truth)
         assert ok.mean() == 1.0
         errors.append(err)
-    err = np.concatenate(errors)
-    rmse = float(np.sqrt(np.mean(err ** 2)))  # per axis
+    return float(np.sqrt(np.mean(np.concatenate(errors) ** 2)))
+
+
+def test_localisation_reaches_mortensen_least_squares_precision():
+    # Mortensen et al. 2010, Nat. Methods 7:377, eq. (6) (see _mortensen_bound)
+    s, n_photons, b2 = 1.5, 1500.0, 4.0
+    bound = _mortensen_bound(s, n_photons, b2)
+    rmse = _spot_rmse(1, 4, 6, 24, s, n_photons, b2, scales_px(2.5, 7, 1.0, 5))
     assert rmse <= 1.2 * bound, (rmse, bound)
     assert rmse >= 0.6 * bound, (rmse, bound)  # no estimator beats the information limit by that much
 
@@ -174,19 +185,9 @@ def test_wide_blobs_reach_mortensen_least_squares_precision():
     # Mortensen, Churchman, Spudich & Flyvbjerg 2010, Nat. Methods 7:377, eq. (6), as above, for
     # primordium-sized spots (s = 6 px): their fit windows are averaged in 2×2 blocks, which
     # must not cost precision
-    s, n_photons, b2, a = 6.0, 20000.0, 10.0, 1.0
-    s_a2 = s ** 2 + a ** 2 / 12
-    bound = math.sqrt(s_a2 / n_photons * (16 / 9 + 8 * math.pi * s_a2 * b2 / (n_photons * a ** 2)))
-    rng = np.random.default_rng(11)
-    errors = []
-    for _ in range(5):
-        expected, truth = _spots(rng, 4, 72, s, n_photons, b2)
-        img = rng.poisson(expected).astype(np.float32)
-        df = detect_blobs(img, scales_px(10, 30, 1.0, 6), min_snr=3)
-        err, ok = _match(df, truth)
-        assert ok.mean() == 1.0
-        errors.append(err)
-    rmse = float(np.sqrt(np.mean(np.concatenate(errors) ** 2)))
+    s, n_photons, b2 = 6.0, 20000.0, 10.0
+    bound = _mortensen_bound(s, n_photons, b2)
+    rmse = _spot_rmse(11, 5, 4, 72, s, n_photons, b2, scales_px(10, 30, 1.0, 6))
     assert 0.8 * bound <= rmse <= 1.2 * bound, (rmse, bound)
 
 
