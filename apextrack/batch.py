@@ -218,12 +218,11 @@ def _open_for_settings(path: str, s: Settings):
     warnings are the stack task's to report)."""
     import warnings
 
-    from .stack import read_stack
+    from .pipeline import open_stack
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return read_stack(path, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um, interval_h=s.interval_h,
-                          time_axis=s.time_axis)
+        return open_stack(path, s)
 
 
 def measure_frames_task(path: str, settings: dict, first: int, stop: int) -> list | str:

@@ -122,7 +122,6 @@ class FrameMeasure:
     """The measurements of one timepoint, in its own pixel frame (see :func:`measure_frame`)."""
 
     t: int
-    ndim: int
     blank: bool
     view: np.ndarray
     region: tuple[float, float, float]
@@ -188,7 +187,7 @@ def measure_frame(stack: Stack, t: int, s: Settings, ctx: StageContext) -> Frame
         dome = fit_dome(hx * px, hy * px, hz, up=hm.up, init=ctx.dome_init, robust_um=max(0.5, 0.25 * dz))
         if not dome_is_plausible(dome, (nx * px, ny * px)):
             dome = None  # no summit found (a plane, or a summit outside the field)
-    return FrameMeasure(t=t, ndim=3 if stack.has_z else 2, blank=is_blank, view=view, region=(rx, ry, rr),
+    return FrameMeasure(t=t, blank=is_blank, view=view, region=(rx, ry, rr),
                         blobs=blobs, height=hm, dome=dome, fitted=fit_now)
 
 
@@ -311,6 +310,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     hm_last, hm_matrix = None, None   # last height map and its frame's registration (frame 0 → it)
     dome_ref = None          # last fitted summit in frame-0 pixels
     expected = 0
+    is3d = stack.has_z
     out_pool, out_jobs = None, deque()
     if on_frame is not None and _n_threads(s.threads) > 1:
         from concurrent.futures import ThreadPoolExecutor
@@ -322,7 +322,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             if t != expected:
                 raise RuntimeError(f"frame {t} measured out of order (expected frame {expected})")
             expected += 1
-            is_blank, view, hm, dome, is3d = m.blank, m.view, m.height, m.dome, m.ndim == 3
+            is_blank, view, hm, dome = m.blank, m.view, m.height, m.dome
             if is_blank:
                 blank.append(t)
             rx, ry, rr = m.region

@@ -65,6 +65,13 @@ def demo_stack_path(name: str = "spiral") -> Path:
     return Path(_demo(name))
 
 
+def open_stack(source, s: Settings) -> Stack:
+    """The stack at ``source`` with the metadata overrides of ``s`` (pixel size, z step,
+    interval, time axis), as every analysis opens it."""
+    return read_stack(source, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um, interval_h=s.interval_h,
+                      time_axis=s.time_axis)
+
+
 def resolve_settings(settings: Settings | dict | None = None, settings_file=None, **overrides) -> Settings:
     """Defaults ← settings file ← ``settings`` ← keyword overrides (``None`` overrides are ignored)."""
     from . import settings as settings_mod
@@ -230,8 +237,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         if isinstance(source, Stack):
             stack = source
         else:
-            stack = read_stack(source, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um,
-                               interval_h=s.interval_h, time_axis=s.time_axis)
+            stack = open_stack(source, s)
     stack_warnings = list(stack.warnings)
     for w in caught:
         if progress and issubclass(w.category, StackWarning):

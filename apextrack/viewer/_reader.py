@@ -78,9 +78,9 @@ def stack_of(correction: Correction):
     src = correction.run.get("input")
     if not src or src == "array" or not Path(src).exists():
         return None
-    s = correction.settings
-    return read_stack(src, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um, interval_h=s.interval_h,
-                      time_axis=s.time_axis)
+    from ..pipeline import open_stack
+
+    return open_stack(src, correction.settings)
 
 
 def topview_path(correction: Correction) -> Path | None:
