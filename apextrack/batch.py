@@ -225,24 +225,42 @@ def _open_for_settings(path: str, s: Settings):
         return open_stack(path, s)
 
 
-def measure_frames_task(path: str, settings: dict, first: int, stop: int) -> list | str:
-    """Measure frames ``first … stop − 1`` of the stack at ``path`` (a block of a long stack).
-
-    Runs in a worker and opens the stack itself. Every frame is measured on its own (see
-    :func:`apextrack.imaging.measure_frame`), after the context the whole stack shares
-    (:func:`apextrack.imaging.stage_context`, from its first frame with signal), so the blocks
-    together give exactly what one task would. Returns the list of
-    :class:`~apextrack.imaging.FrameMeasure`, or the error in one line.
-    """
-    from .imaging import measure_frames, stage_context
+def stage_context_task(path: str, settings: dict):
+    """The :class:`~apextrack.imaging.StageContext` of the stack at ``path`` (from its first
+    frame with signal), computed once and handed to every block of its frames; or the error in
+    one line."""
+    from .imaging import stage_context
 
     s = from_dict(settings) if settings else Settings()
     try:
         stack = _open_for_settings(path, s)
         try:
-            ctx, done = stage_context(stack, s)
-            return list(measure_frames(stack, s, ctx, frames=range(first, stop),
-                                       done={t: m for t, m in done.items() if first <= t < stop}, threads=1))
+            return stage_context(stack, s)[0]
+        finally:
+            stack.close()
+    except ApextrackError as exc:
+        return exc.one_line()
+    except MemoryError:
+        return f"{path}: out of memory finding the stack's first frame with signal"
+
+
+def measure_frames_task(path: str, settings: dict, first: int, stop: int, ctx) -> list | str:
+    """Measure frames ``first … stop − 1`` of the stack at ``path`` (a block of a long stack).
+
+    Runs in a worker and opens the stack itself. Every frame is measured on its own (see
+    :func:`apextrack.imaging.measure_frame`) with the context the whole stack shares (``ctx``,
+    from :func:`stage_context_task`), so the blocks together give exactly what one task would.
+    Returns the list of :class:`~apextrack.imaging.FrameMeasure`, or the error in one line.
+    """
+    from .imaging import measure_frames
+
+    if isinstance(ctx, str):  # the context could not be found: its error is this block's
+        return ctx
+    s = from_dict(settings) if settings else Settings()
+    try:
+        stack = _open_for_settings(path, s)
+        try:
+            return list(measure_frames(stack, s, ctx, frames=range(first, stop), threads=1))
         finally:
             stack.close()
     except ApextrackError as exc:
@@ -400,9 +418,12 @@ def run_batch(source, out: str | Path, settings: Settings | dict | None = None, 
             blocks = frame_blocks(n, s.frames_per_task) if n else [(0, 0)]
             parts = None
             if len(blocks) > 1:
-                # a long stack: blocks of frames measured by tasks of their own, put together
-                # (registration, linking, measurements, report) by the stack's task
-                parts = [client.submit(measure_frames_task, src, settings_dict, a, b, pure=False,
+                # a long stack: the context its frames share found once, then blocks of frames
+                # measured by tasks of their own, put together (registration, linking,
+                # measurements, report) by the stack's task
+                ctx = client.submit(stage_context_task, src, settings_dict, pure=False,
+                                    key=f"apextrack-context-{stamp}")
+                parts = [client.submit(measure_frames_task, src, settings_dict, a, b, ctx, pure=False,
                                        key=f"apextrack-frames-{a}-{b - 1}-{stamp}") for a, b in blocks]
             fut = client.submit(analyse_stack_task, src, str((out / name).resolve()), settings_dict,
                                 overwrite, name, parts, pure=False, key=f"apextrack-stack-{stamp}")

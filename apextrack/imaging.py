@@ -191,22 +191,34 @@ def measure_frame(stack: Stack, t: int, s: Settings, ctx: StageContext) -> Frame
                         blobs=blobs, height=hm, dome=dome, fitted=fit_now)
 
 
+def _opening_context(sigmas: np.ndarray, s: Settings, t: int) -> StageContext:
+    """The context a frame is measured with when it is taken as the stack's first with signal:
+    the side the dome faces as the settings give it (``auto``: from this frame), no earlier dome."""
+    return StageContext(sigmas, {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side], None, t)
+
+
 def stage_context(stack: Stack, s: Settings) -> tuple[StageContext, dict[int, FrameMeasure]]:
     """Decide what every frame's measurement shares, from the first frame with signal: the side
     the dome faces (when ``surface_side`` is ``auto``) and the dome that starts every other
     frame's fit. Returns the context and the frames measured on the way (the blank frames
     before, and that first frame), so that they need not be measured again."""
-    side = {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side]
     sigmas = stack_sigmas(stack, s)
     done: dict[int, FrameMeasure] = {}
     for t in range(stack.n_frames):
-        m = measure_frame(stack, t, s, StageContext(sigmas, side, None, t))
+        opening = _opening_context(sigmas, s, t)
+        m = measure_frame(stack, t, s, opening)
         done[t] = m
         if not m.blank:
-            if m.height is not None and isinstance(side, str):
-                side = m.height.up
+            side = m.height.up if m.height is not None and isinstance(opening.side, str) else opening.side
             return StageContext(sigmas, side, m.dome, t), done
-    return StageContext(sigmas, side, None, None), done
+    return StageContext(sigmas, _opening_context(sigmas, s, 0).side, None, None), done
+
+
+def _measure(stack: Stack, t: int, s: Settings, ctx: StageContext) -> FrameMeasure:
+    """:func:`measure_frame` with the context :func:`stage_context` measured frame ``t`` with:
+    the first frame with signal is measured as it was when the context was found, so that a
+    block of frames measured elsewhere gives it exactly (blank frames do not use the context)."""
+    return measure_frame(stack, t, s, _opening_context(ctx.sigmas, s, t) if t == ctx.first else ctx)
 
 
 def _n_threads(requested: int) -> int:
@@ -231,7 +243,7 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
     n = _n_threads(s.threads if threads is None else threads)
     if n <= 1 or len(frames) - len(done) <= 1:
         for t in frames:
-            yield done.pop(t) if t in done else measure_frame(stack, t, s, ctx)
+            yield done.pop(t) if t in done else _measure(stack, t, s, ctx)
         return
     from concurrent.futures import ThreadPoolExecutor
 
@@ -245,7 +257,7 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
                 t = next(todo, None)
                 if t is None:
                     return
-                pending.append(done.pop(t) if t in done else ex.submit(measure_frame, stack, t, s, ctx))
+                pending.append(done.pop(t) if t in done else ex.submit(_measure, stack, t, s, ctx))
 
         fill()
         while pending:
