@@ -238,13 +238,6 @@ def _band_to_dense(band: np.ndarray) -> np.ndarray:
     return m
 
 
-def _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, gamma, omega, smooth: float = 0.0):
-    """Least squares of the centres and offsets for a fixed λ = γ + iω (``smooth``: weight of
-    the centre smoothness prior, in units of the position error); see :class:`_ProfiledSolver`.
-    Returns the coefficients ``[c_0 … c_{F−1}, a_0 … a_{n−1}]`` and the residual sum of squares."""
-    return _ProfiledSolver(t, z, fidx, tid, n_frames, n, t_ref, smooth)(gamma, omega)
-
-
 def _single_blas_thread(func):
     """Run ``func`` with BLAS/LAPACK on one thread: the linking's matrices are small (frames ×
     frames at most), and on a busy machine a multi-threaded BLAS spends far longer waiting for

@@ -178,7 +178,7 @@ def _design_lstsq(t, z, fidx, tid, n_f, n, t_ref, lam, smooth):
 def test_profiled_solver_matches_dense_least_squares(n_frames):
     # reference: numpy.linalg.lstsq on the full design matrix (one column per frame centre
     # and per track offset, plus the second-difference rows of the centre prior)
-    from apextrack.link import _profiled_fit
+    from apextrack.link import _ProfiledSolver
 
     det = spiral_points(n_frames=n_frames, rotation_deg_per_frame=2.0, drift_um_per_frame=(0.4, -0.3),
                         noise_um=0.2, seed=3)
@@ -188,8 +188,9 @@ def test_profiled_solver_matches_dense_least_squares(n_frames):
     t = det["time_h"].to_numpy(float)
     z = det["x_um"].to_numpy(float) + 1j * det["y_um"].to_numpy(float)
     t_ref = float(t.mean())
+    solver = _ProfiledSolver(t, z, fidx, tid, n_frames, n, t_ref, 0.2)
     for lam in (0.019 + 0.0j, 0.05 - 0.01j):
-        coef, sse = _profiled_fit(t, z, fidx, tid, n_frames, n, t_ref, lam.real, lam.imag, 0.2)
+        coef, sse = solver(lam.real, lam.imag)
         ref, ref_sse = _design_lstsq(t, z, fidx, tid, n_frames, n, t_ref, lam, 0.2)
         assert sse == pytest.approx(ref_sse, rel=1e-9, abs=1e-9)
         np.testing.assert_allclose(coef, ref, atol=1e-5)
