@@ -152,18 +152,6 @@ def _bin_sums(volume: np.ndarray, b: int, out: np.ndarray) -> None:
         out[z] = cols
 
 
-def _bin(volume: np.ndarray, b: int) -> np.ndarray:
-    """Mean over ``b × b`` lateral blocks, float32, from a volume of any real dtype
-    (:func:`_bin_sums` divided by ``b²``)."""
-    nz, ny, nx = volume.shape
-    if b == 1:
-        return np.asarray(volume, np.float32)
-    out = np.empty((nz, ny // b, nx // b), np.float32)
-    _bin_sums(volume, b, out)
-    out *= np.float32(1.0 / (b * b))
-    return out
-
-
 # the lateral smoothing of the binned volume: a Gaussian of σ = 1 cell, truncated at 4 σ (the
 # kernel of scipy.ndimage.gaussian_filter with its defaults)
 _SMOOTH_RADIUS = 4

@@ -75,16 +75,28 @@ def test_height_map_and_shell_are_the_same_from_the_stacks_own_dtype():
 def test_lateral_binning_is_the_exact_block_mean_of_16_bit_data(b):
     # common practice, no source: the b × b block mean, checked against numpy's float64 mean
     # of the reshaped blocks; values up to 65535 (the 32-bit pair sums must not overflow)
-    from apextrack.projection import _bin
-
     rng = np.random.default_rng(3)
     v = rng.integers(0, 65536, size=(3, 4 * b + 1, 5 * b + 3)).astype(np.uint16)
     v[0] = 65535
+    ref = _block_mean(v, b)
+    np.testing.assert_allclose(_binned_mean(v, b), ref, rtol=1e-6)
+    np.testing.assert_array_equal(_binned_mean(v, b), _binned_mean(v.astype(np.int32), b))
+
+
+def _block_mean(v: np.ndarray, b: int) -> np.ndarray:
+    """numpy's float64 mean of the reshaped b × b blocks (the reference)."""
     nz, ny, nx = v.shape
     my, mx = (ny // b) * b, (nx // b) * b
-    ref = v[:, :my, :mx].astype(np.float64).reshape(nz, my // b, b, mx // b, b).mean(axis=(2, 4))
-    np.testing.assert_allclose(_bin(v, b), ref, rtol=1e-6)
-    np.testing.assert_array_equal(_bin(v, b), _bin(v.astype(np.int32), b))
+    return v[:, :my, :mx].astype(np.float64).reshape(nz, my // b, b, mx // b, b).mean(axis=(2, 4))
+
+
+def _binned_mean(v: np.ndarray, b: int) -> np.ndarray:
+    """The height map's block sums (float32) divided by b²."""
+    from apextrack.projection import _bin_sums
+
+    out = np.empty((v.shape[0], v.shape[1] // b, v.shape[2] // b), np.float32)
+    _bin_sums(v, b, out)
+    return out / np.float32(b * b)
 
 
 
@@ -96,12 +108,12 @@ def test_binned_volume_is_smoothed_like_scipy_gaussian_filter(b, dtype, shape):
     # at 4 σ, mode "nearest") of the b × b block means; ours runs in float32 on a padded layout
     from scipy import ndimage as ndi
 
-    from apextrack.projection import _PAD, _bin, _binned_smoothed
+    from apextrack.projection import _PAD, _binned_smoothed
 
     rng = np.random.default_rng(b)
     hi = 255 if dtype == np.uint8 else 65535
     v = rng.integers(0, hi + 1, size=shape).astype(dtype)
-    ref = ndi.gaussian_filter(_bin(v, b).astype(np.float64), (0, 1.0, 1.0), mode="nearest")
+    ref = ndi.gaussian_filter(_block_mean(v, b), (0, 1.0, 1.0), mode="nearest")
     m = _PAD
     for group in (1, 4, 100):  # slices smoothed a few at a time must not change the cells
         got = _binned_smoothed(v, b, group)[:, m:-m, m:-m]
