@@ -423,12 +423,3 @@ def _warp_bilinear(view: np.ndarray, m: np.ndarray, cval: float) -> np.ndarray:
     out = top + fy * ((c + fx * (d - c)) - top)
     out[~inside] = f(cval)
     return out
-
-
-def register_points(frames_points: list[np.ndarray], views: list[np.ndarray], pixel_size_um: float,
-                    apex_xy_px=None, **kwargs) -> pd.DataFrame:
-    """Register a short series held in memory (convenience wrapper around :class:`Registrar`)."""
-    reg = Registrar(views[0].shape, pixel_size_um, **kwargs)
-    for t, (pts, v) in enumerate(zip(frames_points, views)):
-        reg.update(t, v, pts, None if apex_xy_px is None else apex_xy_px[t])
-    return reg.table()
