@@ -1,4 +1,4 @@
-"""Linking detections into tracks (one track per primordium) with trackpy.
+"""Linking detections into tracks (one track per primordium).
 
 Primordia do not wander: after birth on the rim of the apex they drift outward from the apex
 centre at a fixed azimuth as r(t) = R·exp(γ(t − τ)) (Richards 1951; Douady & Couder 1992),
@@ -11,7 +11,7 @@ a spiral similarity about a linearly drifting centre c(t): γ is the relative ra
 rate, ω the rotation rate of the specimen and a_k the primordium's offset from the centre at
 ``t_ref``. :func:`fit_motion` fits this model to a first set of tracks; :func:`link_tracks`
 links in two passes (plain nearest-neighbour linking → motion fit → linking again with a
-trackpy predictor that moves every primordium along the model, ``z(t + Δt) = c(t + Δt) +
+predictor that moves every primordium along the model, ``z(t + Δt) = c(t + Δt) +
 exp(λΔt)·(z(t) − c(t))``), falls back to nearest-neighbour linking when the motion cannot be
 fitted, splits off tracks that jump, and adds per-track quality columns.
 
@@ -24,7 +24,6 @@ whenever three or more new primordia are seen.
 from __future__ import annotations
 
 import functools
-import logging
 import math
 from dataclasses import dataclass, field
 
@@ -708,60 +707,141 @@ def _inside_hull_of_frame(tracks: pd.DataFrame, first: pd.DataFrame) -> np.ndarr
 # ----------------------------------------------------------------------------- linking
 
 
-def _quiet_trackpy():
-    import trackpy
+def _assign(cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Optimal one-to-one assignment (scipy's ``linear_sum_assignment``) of the rows of
+    ``cost`` to its columns, forbidden pairs marked ``inf``; returns the rows and columns."""
+    from scipy.optimize import linear_sum_assignment
 
-    trackpy.quiet(suppress=True)
-    logging.getLogger("trackpy").setLevel(logging.WARNING)
-    return trackpy
+    return linear_sum_assignment(cost)
 
 
-def _motion_predictor(model: MotionModel, frame_time: dict):
-    """A trackpy predictor (``f(t1, particles) -> positions``) moving each particle along the
-    motion model from the frame it was last seen to frame ``t1``; positions are ``(y, x)``.
-    All particles are moved in one vectorised call."""
+def _link_level(src: np.ndarray, dst: np.ndarray, search_range: float) -> np.ndarray:
+    """One frame's links: for each source position (predicted to this frame) the index of the
+    destination it continues into, or -1.
 
-    def predict(t1, particles):
-        particles = list(particles)
-        if not particles:
-            return []
-        t_to = frame_time[int(t1)]
-        pos = np.array([p.pos for p in particles], float).reshape(len(particles), -1)
-        t_from = np.array([frame_time[int(p.t)] for p in particles], float)
-        xn, yn = model.predict(pos[:, 1], pos[:, 0], t_from, t_to)
-        return list(np.column_stack([yn, xn]))
+    The links minimise the summed squared distances over all sources, a source left unlinked
+    costing ``search_range²`` and no link being longer than ``search_range`` (the criterion of
+    Crocker & Grier 1996, solved exactly). Sources and destinations are split into the groups
+    that lie within reach of each other, and each group is solved as a linear assignment with
+    one "no link" column per source.
+    """
+    from scipy.sparse.csgraph import connected_components
+    from scipy.spatial import cKDTree
 
-    return predict
+    k, m = len(src), len(dst)
+    out = np.full(k, -1, np.int64)
+    if not k or not m:
+        return out
+    pairs = cKDTree(src).sparse_distance_matrix(cKDTree(dst), search_range, output_type="ndarray")
+    if not len(pairs):
+        return out
+    i, j, d = pairs["i"].astype(np.int64), pairs["j"].astype(np.int64), pairs["v"]
+    # groups: connected components of the bipartite graph sources (0…k-1) + destinations (k…)
+    from scipy.sparse import coo_matrix
+
+    graph = coo_matrix((np.ones(len(i)), (i, k + j)), shape=(k + m, k + m))
+    _, label = connected_components(graph, directed=False)
+    order = np.argsort(label[i], kind="stable")
+    i, j, d = i[order], j[order], d[order]
+    bounds = np.flatnonzero(np.diff(label[i])) + 1
+    r2 = search_range * search_range
+    for gi, gj, gd in zip(np.split(i, bounds), np.split(j, bounds), np.split(d, bounds)):
+        if len(gi) == 1:  # one source within reach of one destination only
+            out[gi[0]] = gj[0]
+            continue
+        us, ri = np.unique(gi, return_inverse=True)
+        ud, cj = np.unique(gj, return_inverse=True)
+        cost = np.full((len(us), len(ud) + len(us)), np.inf)
+        cost[ri, cj] = gd * gd
+        cost[np.arange(len(us)), len(ud) + np.arange(len(us))] = r2
+        rows, cols = _assign(cost)
+        linked = cols < len(ud)
+        out[us[rows[linked]]] = ud[cols[linked]]
+    return out
+
+
+def _link_frames(frame: np.ndarray, x: np.ndarray, y: np.ndarray, search_range: float, memory: int,
+                 predict=None) -> np.ndarray:
+    """Track label of every detection, linked frame by frame.
+
+    Each frame's detections continue the tracks seen in the previous frame or, up to
+    ``memory`` frames back, missed since (frames are counted by their numbers, so a frame
+    without detections counts as a missed one); the links
+    of a frame are found by :func:`_link_level` from where each track's last detection is
+    predicted to be: ``predict(x, y, from_frames, to_frame) -> (x, y)``, default unmoved.
+    Detections that continue no track start one. Labels are numbered in order of appearance.
+    """
+    n = len(frame)
+    label = np.full(n, -1, np.int64)
+    if not n:
+        return label
+    order = np.lexsort((np.arange(n), frame))
+    fs = frame[order]
+    starts = np.flatnonzero(np.r_[True, fs[1:] != fs[:-1]])
+    ends = np.r_[starts[1:], n]
+    # open tracks: their label, last row, and the frame they were last seen in
+    open_label = np.zeros(0, np.int64)
+    open_row = np.zeros(0, np.int64)
+    open_frame = np.zeros(0, np.int64)
+    n_labels = 0
+    for a, b in zip(starts, ends):
+        rows = order[a:b]
+        now = int(frame[rows[0]])
+        keep = open_frame >= now - 1 - int(memory)
+        open_label, open_row, open_frame = open_label[keep], open_row[keep], open_frame[keep]
+        sx, sy = x[open_row], y[open_row]
+        if predict is not None and len(open_row):
+            sx, sy = predict(sx, sy, frame[open_row], now)
+        link = _link_level(np.column_stack([sx, sy]), np.column_stack([x[rows], y[rows]]),
+                           search_range)
+        cont = link >= 0
+        label[rows[link[cont]]] = open_label[cont]
+        born = rows[label[rows] < 0]
+        label[born] = np.arange(n_labels, n_labels + len(born))
+        n_labels += len(born)
+        # continued tracks move on to this frame's detections; new tracks open here
+        moved = np.zeros(len(open_row), bool)
+        moved[cont] = True
+        open_row = np.r_[open_row[~moved], rows[link[cont]], born]
+        open_label = np.r_[open_label[~moved], open_label[cont], label[born]]
+        open_frame = np.r_[open_frame[~moved], np.full(int(cont.sum()) + len(born), now)]
+    return label
 
 
 def link_detections(detections: pd.DataFrame, search_range_um: float, memory: int = 2,
                     motion: MotionModel | None = None) -> pd.DataFrame:
     """Link detections frame to frame; returns the detections with an integer ``track_id``.
 
-    Uses :func:`trackpy.link` on the µm positions, so a primordium may move at most
-    ``search_range_um`` (from where it is predicted to be) between frames and be missed in up
-    to ``memory`` frames. With a ``motion`` model each primordium is predicted to move along
-    it (growth outward from the centre, rotation, drift); without, it is expected to stay put
-    (nearest-neighbour linking). Track ids are renumbered from 0 in order of first appearance
-    (frame, then y, then x), so the same input always gives the same ids.
+    A primordium may move at most ``search_range_um`` (from where it is predicted to be)
+    between frames and be missed in up to ``memory`` frames; within those limits each frame's
+    links minimise the summed squared distances (:func:`_link_level`). With a ``motion`` model
+    each primordium is predicted to move along it (growth outward from the centre, rotation,
+    drift); without, it is expected to stay put (nearest-neighbour linking). Track ids are
+    renumbered from 0 in order of first appearance (frame, then y, then x), so the same input
+    always gives the same ids.
     """
-    trackpy = _quiet_trackpy()
     if detections.empty:
         out = detections.copy()
         out["track_id"] = pd.Series(dtype=np.int64)
         return out
     df = detections.reset_index(drop=True).copy()
-    df["_row"] = np.arange(len(df))
-    kw = {}
-    if motion is not None:
-        frame_time = df.groupby("frame")["time_h"].first().to_dict()
-        kw["predictor"] = _motion_predictor(motion, {int(k): float(v) for k, v in frame_time.items()})
-    linked = trackpy.link(df, search_range=float(search_range_um), memory=int(memory),
-                          pos_columns=["y_um", "x_um"], t_column="frame",
-                          adaptive_stop=0.2 * float(search_range_um), adaptive_step=0.9, **kw)
-    linked = linked.sort_values("_row", kind="stable")
-    df["track_id"] = linked["particle"].to_numpy()
-    return renumber_tracks(df).drop(columns="_row")
+    predict = None if motion is None else _frame_predictor(motion, df)
+    df["track_id"] = _link_frames(df["frame"].to_numpy(np.int64), df["x_um"].to_numpy(float),
+                                  df["y_um"].to_numpy(float), float(search_range_um), int(memory), predict)
+    return renumber_tracks(df)
+
+
+def _frame_predictor(motion: MotionModel, detections: pd.DataFrame):
+    """``predict(x, y, from_frames, to_frame) -> (x, y)`` moving positions along ``motion``
+    between frames (their times taken from the detections' ``time_h``)."""
+    ftime = detections.groupby("frame")["time_h"].first()
+    times = dict(zip(ftime.index.to_numpy(np.int64).tolist(), ftime.to_numpy(float).tolist()))
+
+    def predict(x, y, from_frames, to_frame):
+        t_from = np.array([times[int(f)] for f in from_frames], float)
+        return motion.predict(x, y, t_from, times[int(to_frame)])
+
+    return predict
 
 
 def step_residuals(tracks: pd.DataFrame, motion: MotionModel | None = None) -> np.ndarray:

@@ -131,6 +131,47 @@ def _mutual_nn(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np
     return ia[ok], ib[ok]
 
 
+def _best_turn(prev_xy: np.ndarray, cur_xy: np.ndarray, pivot: np.ndarray, shift: np.ndarray,
+               angles: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """The trial turn about ``pivot`` (then ``shift``) that matches the most points mutually
+    nearest within ``tol``, ties going to the smaller summed distance, then the first angle.
+    Returns the matched indices ``(ia, ib)`` of that turn, or None when no turn matches any.
+
+    A few dozen primordia: every turn is tried at once on full distance matrices; larger sets
+    go turn by turn through :func:`_mutual_nn`'s k-d trees.
+    """
+    best_score, best = None, None
+    if len(prev_xy) * len(cur_xy) > 4096:
+        for ang in angles:
+            r = _rot(ang)
+            pred = pivot + (prev_xy - pivot) @ r.T + shift
+            ia, ib = _mutual_nn(pred, cur_xy, tol)
+            if ia.size:
+                score = (ia.size, -float(np.sum(np.hypot(*(pred[ia] - cur_xy[ib]).T))))
+                if best_score is None or score > best_score:
+                    best_score, best = score, (ia, ib)
+        return best
+    rel = prev_xy - pivot
+    pred = np.stack([pivot + rel @ _rot(a).T + shift for a in angles])  # (A, n, 2)
+    d = np.hypot(pred[:, :, None, 0] - cur_xy[None, None, :, 0],
+                 pred[:, :, None, 1] - cur_xy[None, None, :, 1])     # (A, n, m)
+    iab, iba = np.argmin(d, axis=2), np.argmin(d, axis=1)            # (A, n), (A, m)
+    dmin = np.take_along_axis(d, iab[:, :, None], axis=2)[:, :, 0]
+    rows = np.arange(len(prev_xy))
+    # a point pair is matched when each is the other's nearest and they lie within tol
+    matched = (dmin < tol) & (np.take_along_axis(iba, iab, axis=1) == rows)
+    counts = matched.sum(axis=1)
+    if not counts.max():
+        return None
+    for k in np.nonzero(counts == counts.max())[0]:
+        ia = np.nonzero(matched[k])[0]
+        ib = iab[k][ia]
+        score = -float(np.sum(np.hypot(*(pred[k][ia] - cur_xy[ib]).T)))
+        if best_score is None or score > best_score:
+            best_score, best = score, (ia, ib)
+    return best
+
+
 def match_points(prev_xy: np.ndarray, cur_xy: np.ndarray, shift_guess, tol: float,
                  max_rotation_deg: float = 15.0, pivot=None) -> dict | None:
     """Match two point sets related by a small rotation, shift and growth; fit a similarity.
@@ -143,19 +184,11 @@ def match_points(prev_xy: np.ndarray, cur_xy: np.ndarray, shift_guess, tol: floa
     if len(prev_xy) < 3 or len(cur_xy) < 3:
         return None
     pivot = prev_xy.mean(axis=0) if pivot is None else np.asarray(pivot, float)
-    best = None
-    for ang in np.arange(-max_rotation_deg, max_rotation_deg + 1e-9, 1.0):
-        r = _rot(ang)
-        pred = pivot + (prev_xy - pivot) @ r.T + np.asarray(shift_guess, float)
-        ia, ib = _mutual_nn(pred, cur_xy, tol)
-        if ia.size:
-            err = float(np.sum(np.hypot(*(pred[ia] - cur_xy[ib]).T)))
-            score = (ia.size, -err)
-            if best is None or score > best[0]:
-                best = (score, ia, ib)
-    if best is None or best[1].size < 3:
+    angles = np.arange(-max_rotation_deg, max_rotation_deg + 1e-9, 1.0)
+    best = _best_turn(prev_xy, cur_xy, pivot, np.asarray(shift_guess, float), angles, tol)
+    if best is None or best[0].size < 3:
         return None
-    ia, ib = best[1], best[2]
+    ia, ib = best
     for _ in range(4):
         s, r, t = fit_similarity(prev_xy[ia], cur_xy[ib])
         pred = s * prev_xy @ r.T + t

@@ -108,8 +108,6 @@ def main() -> None:
     print(json.dumps(machine), flush=True)
     rows = []
     paths = [(n, DATA / f"bench_T{n:03d}.tif") for n in args.frames] + [(None, Path(p)) for p in args.extra]
-    import trackpy  # noqa: F401  - its import (a fixed ~1–3 s) is not charged to the first T
-
     for n, p in paths:
         det, cen = cached_image_stage(p)
         best = None
