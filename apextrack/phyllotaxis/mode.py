@@ -22,7 +22,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.stats import binom
+from scipy.special import bdtrc
 
 from .. import circular as circ
 
@@ -67,7 +67,9 @@ def _log10_p(c: dict, n: int) -> float:
     """log10 of the chance that at least ``n_fit`` of ``n`` random angles fit the candidate."""
     if c["n_fit"] <= 0:
         return 0.0
-    return float(binom.logsf(c["n_fit"] - 1, n, c["p0"]) / math.log(10.0))
+    # P(at least n_fit of n) is the binomial upper tail P(X > n_fit - 1) (scipy.special.bdtrc)
+    with np.errstate(divide="ignore"):
+        return float(np.log(bdtrc(c["n_fit"] - 1, n, c["p0"])) / math.log(10.0))
 
 
 def _candidates_json(candidates) -> list[dict]:
