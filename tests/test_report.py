@@ -15,6 +15,7 @@ import xml.etree.ElementTree as ET
 
 import numpy as np
 import pytest
+from matplotlib.collections import LineCollection
 
 from apextrack import report
 from apextrack.settings import describe
@@ -101,32 +102,80 @@ def test_figures_show_the_tables(demo_run):
     # every primordium seen in frame 5 is numbered with its birth rank
     ranks = dict(zip(res.primordia["track_id"], res.primordia["birth_rank"]))
     expected = sorted(int(ranks[t]) for t in res.tracks.loc[res.tracks["frame"] == 5, "track_id"] if t in ranks)
-    labels = sorted(int(t.get_text()) for t in ax.texts if t.get_text().isdigit())
+    labels = sorted(int(s) for s in _drawn_labels(ax) if s.isdigit())
     assert labels == expected
     # divergence sequence: the plotted angles are the table's
     d = res.divergence
     ax = figs["divergence"].axes[0]
     pts = np.vstack([c.get_offsets() for c in ax.collections if len(c.get_offsets())])
     assert sorted(map(tuple, np.round(pts, 9))) == sorted(zip(d["to_rank"].astype(float), np.round(d["angle_deg"], 9)))
-    # polar histogram: bar heights are numpy.histogram's counts of the angles in 10° bins
+    # polar histogram: bar heights are numpy.histogram's counts of the angles in 10° bins (the
+    # empty bins have no bar)
     ax = figs["polar"].axes[0]
-    heights = np.array([p.get_height() for p in ax.patches if p.get_width() > 0])
-    counts, _ = np.histogram(np.deg2rad(np.mod(d["angle_deg"], 360)), bins=np.deg2rad(np.arange(0, 370, 10)))
-    assert np.array_equal(heights, counts)
+    bars = [p for p in ax.patches if p.get_width() > 0]
+    edges = np.deg2rad(np.arange(0, 370, 10))
+    counts, _ = np.histogram(np.deg2rad(np.mod(d["angle_deg"], 360)), bins=edges)
+    assert np.array_equal([p.get_height() for p in bars], counts[counts > 0])
+    assert np.allclose([p.get_x() for p in bars], edges[:-1][counts > 0])
     # emergence times: the line's slope is the plastochron of the summary
     T = res.summary.get("plastochron_h")
     if T is not None:
         line = next(li for li in figs["emergence"].axes[0].lines if li.get_label().startswith("plastochron"))
         x, y = line.get_data()
         assert math.isclose((y[1] - y[0]) / (x[1] - x[0]), T, rel_tol=1e-9)
-    # growth: each fitted line has the summary's growth rate as slope
+    # growth: each fitted line has the summary's growth rate as slope; every primordium is
+    # drawn (its positions) and numbered
     k = res.summary.get("radial_growth_rate_per_h")
+    ax = figs["growth"].axes[0]
+    positions = [li for li in ax.lines if li.get_marker() == "o" and li.get_linestyle() in ("None", "none", "")]
+    assert len(positions) == len(res.primordia)
+    assert sorted(int(s) for s in _drawn_labels(ax)) == sorted(res.primordia["birth_rank"].astype(int))
     if k is not None:
-        fitted = [li for li in figs["growth"].axes[0].lines if li.get_linestyle() == "-"]
+        fitted = [seg for c in ax.collections if isinstance(c, LineCollection) for seg in c.get_segments()]
+        fitted += [li.get_xydata() for li in ax.lines if li.get_linestyle() == "-"]
         assert fitted
-        for li in fitted:
-            x, y = li.get_data()
-            assert math.isclose((y[-1] - y[0]) / (x[-1] - x[0]), k, rel_tol=1e-6)
+        for xy in fitted:
+            (x0, y0), (x1, y1) = xy[0], xy[-1]
+            assert math.isclose((y1 - y0) / (x1 - x0), k, rel_tol=1e-6)
+
+
+def _drawn_labels(ax) -> list[str]:
+    """The texts written on an axes: text artists and collections of glyph outlines."""
+    return [t.get_text() for t in ax.texts] + [s for c in ax.collections for s in getattr(c, "labels", [])]
+
+
+def test_figures_fit_in_their_canvas(demo_run):
+    """The fixed layout keeps every title, axis label, tick label and legend inside the figure,
+    with the axes no smaller than needed, and no layout engine left to run at save time."""
+    _, out = demo_run
+    for data in (report.gather(out), report.ReportData(summary={"n_frames": 3})):
+        for name, fig in report.make_figures(data).items():
+            assert fig.get_layout_engine() is None, name
+            renderer = fig.canvas.get_renderer()
+            fig_box = fig.bbox
+            for ax in fig.axes:
+                box = ax.get_tightbbox(renderer)
+                assert box.x0 >= fig_box.x0 - 0.5 and box.y0 >= fig_box.y0 - 0.5, name
+                assert box.x1 <= fig_box.x1 + 0.5 and box.y1 <= fig_box.y1 + 0.5, name
+                # the axes use the room: less than 0.6 inch left unused on the widest side
+                unused = (box.x0 - fig_box.x0) + (fig_box.x1 - box.x1)
+                unused_v = (box.y0 - fig_box.y0) + (fig_box.y1 - box.y1)
+                assert min(unused, unused_v) < 0.6 * fig.dpi, name
+                leg = ax.get_legend()
+                if leg is not None:                   # legends clear of the tick labels
+                    lb = leg.get_window_extent(renderer)
+                    for t in ax.get_xticklabels() + ax.get_yticklabels():
+                        if t.get_visible() and t.get_text():
+                            assert not lb.overlaps(t.get_window_extent(renderer)), (name, t.get_text())
+
+
+def test_figures_are_reproducible(demo_run):
+    """The same tables give the same bytes, PNG and SVG."""
+    _, out = demo_run
+    data = report.gather(out)
+    once = {n: report.render_figure(f) for n, f in report.make_figures(data).items()}
+    again = {n: report.render_figure(f) for n, f in report.make_figures(data).items()}
+    assert once == again
 
 
 def test_report_renders_without_a_display(demo_run, tmp_path):
