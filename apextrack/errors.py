@@ -32,6 +32,10 @@ class ApextrackError(Exception):
         self.hint = hint
         super().__init__(self.one_line())
 
+    def __reduce__(self):
+        # rebuilt from its parts when it crosses to another process (a frame measured there)
+        return self.__class__, (self.what, self.path, self.hint)
+
     def one_line(self) -> str:
         """The error as a single line: ``<file>: <what is wrong> — <what to do>``."""
         text = self.what.replace("\n", " ")

@@ -231,23 +231,34 @@ def _n_threads(requested: int) -> int:
 
 
 def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterable[int] | None = None,
-                   done: dict[int, FrameMeasure] | None = None, threads: int | None = None) -> Iterator[FrameMeasure]:
+                   done: dict[int, FrameMeasure] | None = None, threads: int | None = None,
+                   pool=None) -> Iterator[FrameMeasure]:
     """The measurements of ``frames`` (default: all), yielded in frame order.
 
-    With more than one thread (``threads``, default ``settings.threads``; 0 = one per core) the
-    next frames are measured in a thread pool; at most ``threads`` frames are in flight, so
-    memory stays bounded. ``done`` holds frames already measured.
+    With a ``pool`` (:class:`apextrack.frame_pool.FramePool`, worker processes with the same
+    stack open) the frames are measured there, at most twice the pool's size in flight. Else,
+    with more than one thread (``threads``, default ``settings.threads``; 0 = one per core) the
+    next frames are measured in a thread pool, at most ``threads`` in flight. Memory stays
+    bounded either way. ``done`` holds frames already measured.
     """
     frames = list(range(stack.n_frames) if frames is None else frames)
     done = dict(done or {})
     n = _n_threads(s.threads if threads is None else threads)
-    if n <= 1 or len(frames) - len(done) <= 1:
+    if pool is None and (n <= 1 or len(frames) - len(done) <= 1):
         for t in frames:
             yield done.pop(t) if t in done else _measure(stack, t, s, ctx)
         return
-    from concurrent.futures import ThreadPoolExecutor
+    ex = None
+    if pool is not None:
+        # the next frames wait in the workers' queue while the caller takes in the last ones
+        n, submit = 2 * pool.size, pool.submit
+    else:
+        from concurrent.futures import ThreadPoolExecutor
 
-    ex = ThreadPoolExecutor(max_workers=n, thread_name_prefix="apextrack-frame")
+        ex = ThreadPoolExecutor(max_workers=n, thread_name_prefix="apextrack-frame")
+
+        def submit(t, c):
+            return ex.submit(_measure, stack, t, s, c)
     try:
         pending: deque = deque()
         todo = iter(frames)
@@ -257,7 +268,7 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
                 t = next(todo, None)
                 if t is None:
                     return
-                pending.append(done.pop(t) if t in done else ex.submit(_measure, stack, t, s, ctx))
+                pending.append(done.pop(t) if t in done else submit(t, ctx))
 
         fill()
         while pending:
@@ -265,7 +276,12 @@ def measure_frames(stack: Stack, s: Settings, ctx: StageContext, frames: Iterabl
             fill()
             yield item if isinstance(item, FrameMeasure) else item.result()
     finally:
-        ex.shutdown(wait=True, cancel_futures=True)
+        if ex is not None:
+            ex.shutdown(wait=True, cancel_futures=True)
+        else:
+            for item in pending:
+                if not isinstance(item, FrameMeasure):
+                    item.cancel()
 
 
 def _warp_and_hand_on(on_frame, t: int, view: np.ndarray, matrix: np.ndarray) -> None:
@@ -274,8 +290,8 @@ def _warp_and_hand_on(on_frame, t: int, view: np.ndarray, matrix: np.ndarray) ->
 
 def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 on_frame: Callable[[int, np.ndarray], None] | None = None,
-                extra: dict | None = None, measures: Iterable[FrameMeasure] | None = None
-                ) -> tuple[pd.DataFrame, pd.DataFrame]:
+                extra: dict | None = None, measures: Iterable[FrameMeasure] | None = None,
+                pool=None) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Project, register, fit the dome and detect primordia frame by frame (streaming).
 
     Per frame (:func:`measure_frame`): the dome surface height map (membrane channel when
@@ -291,7 +307,8 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     the top view resampled into the first frame's frame of reference (e.g. to write the top
     views), so that no more than a few frames are held in memory. When ``extra`` is a dict it
     receives the ``registration`` table. ``measures`` gives the frames' measurements in frame
-    order (e.g. made by dask tasks); by default they are made here (:func:`measure_frames`).
+    order (e.g. made by dask tasks); by default they are made here (:func:`measure_frames`, in
+    the worker processes of ``pool`` when given).
     """
     from .apex import _tilt_vector
     from .register import Registrar
@@ -314,7 +331,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     times = stack.times_h()
     if measures is None:
         ctx, done = stage_context(stack, s)
-        measures = measure_frames(stack, s, ctx, done=done)
+        measures = measure_frames(stack, s, ctx, done=done, pool=pool)
     # the dome (height map + paraboloid) is a property of the specimen that changes slowly: with
     # ``dome_every_frames`` > 1 it is fitted on every k-th frame; frames between take the fitted
     # domes interpolated in the registered frame of reference, and the z of their detections
@@ -324,7 +341,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     expected = 0
     is3d = stack.has_z
     out_pool, out_jobs = None, deque()
-    if on_frame is not None and _n_threads(s.threads) > 1:
+    if on_frame is not None and (pool is not None or _n_threads(s.threads) > 1):
         from concurrent.futures import ThreadPoolExecutor
 
         out_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="apextrack-topview")

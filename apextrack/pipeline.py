@@ -5,8 +5,10 @@ and writes the results folder atomically.
 
 from __future__ import annotations
 
+import os
 import platform
 import sys
+import threading
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -21,7 +23,7 @@ from . import __version__
 from .apex import choose_centres
 from .birth import order_primordia
 from .errors import AnalysisError
-from .imaging import TopViewWriter, image_stage
+from .imaging import TopViewWriter, _n_threads, image_stage
 from .link import add_polar, link_tracks
 from .results import StagedFolder, check_output_dir, write_result_tables
 from .settings import Settings, from_dict, result_settings
@@ -89,6 +91,21 @@ def resolve_settings(settings: Settings | dict | None = None, settings_file=None
     return s
 
 
+def _frame_pool(source, stack: Stack, s: Settings):
+    """Worker processes measuring this stack's frames (:class:`apextrack.frame_pool.FramePool`),
+    or None: frames are then measured in threads. Processes need the stack as a file they can
+    open themselves, more than one thread asked for, a few frames to share out, and a program
+    that may fork (:func:`apextrack.frame_pool.can_fork`)."""
+    n = _n_threads(s.threads)
+    if not s.frame_processes or isinstance(source, Stack) or stack.path is None or n <= 1 or stack.n_frames < 3:
+        return None
+    from .frame_pool import FramePool, can_fork
+
+    if not can_fork():
+        return None
+    return FramePool(source, s, min(n, stack.n_frames))
+
+
 def _input_checksums(path, stop=None) -> dict[str, str]:
     """SHA-256 of the input file, or of every file of an input folder."""
     if path is None:
@@ -102,11 +119,10 @@ def _input_checksums(path, stop=None) -> dict[str, str]:
 
 class _Checksums:
     """The input's checksums, computed in a thread of its own while the stack is analysed (the
-    file is read once more, from the page cache; hashing releases the interpreter lock)."""
+    file is read once more, from the page cache; hashing releases the interpreter lock), at the
+    lowest priority, so that it does not hold up the analysis."""
 
     def __init__(self, path):
-        import threading
-
         self._stop = threading.Event()
         self._value: dict[str, str] = {}
         self._error: BaseException | None = None
@@ -114,6 +130,13 @@ class _Checksums:
         self._thread.start()
 
     def _run(self, path) -> None:
+        if sys.platform.startswith("linux"):
+            # the lowest scheduling priority, for this thread alone (Linux sets it per thread):
+            # the hashing takes the processor time the analysis leaves idle
+            try:
+                os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 19)
+            except OSError:
+                pass
         try:
             self._value = _input_checksums(path, self._stop)
         except BaseException as exc:  # handed on by result()
@@ -244,9 +267,16 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             print(f"apextrack: warning: {w.message}", file=sys.stderr)
     stack.channel_index(s.channel)  # fail early on a bad channel
     lap("read", t0)
-    checksums = _Checksums(stack.path)
-
-    staging = StagedFolder(out) if out is not None else None
+    # worker processes are forked first, while this program has no other thread
+    pool = _frame_pool(source, stack, s) if measures is None else None
+    measured_in = f"{pool.size} processes" if pool is not None else f"{_n_threads(s.threads)} thread(s)"
+    try:
+        checksums = _Checksums(stack.path)
+        staging = StagedFolder(out) if out is not None else None
+    except BaseException:
+        if pool is not None:
+            pool.close()
+        raise
     try:
         writer = TopViewWriter(staging.path / "topview.tif", stack) if staging is not None else None
 
@@ -257,8 +287,12 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         t0 = time.perf_counter()
         image_extra: dict = {}
         try:
-            detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra, measures=measures)
+            detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra, measures=measures,
+                                              pool=pool)
         finally:
+            if pool is not None:
+                pool.close()
+                pool = None
             if writer is not None:
                 writer.close()
         lap("image", t0)
@@ -317,12 +351,13 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             "python": platform.python_version(),
             "platform": platform.platform(),
             "input": str(stack.path) if stack.path is not None else "array",
-            "input_sha256": checksums.result(),
+            "input_sha256": None,  # filled in when the checksum thread is done (below)
             "stack": {"axes": stack.axes, "shape": list(stack.shape), "dtype": str(np.dtype(stack.data.dtype)),
                       "format": stack.source_format, "pixel_size_um": list(stack.pixel_size_um),
                       "interval_h": stack.interval_h, "channel_names": stack.channel_names},
             "warnings": stack_warnings,
             "settings": s.to_dict(),
+            "frames_measured_in": measured_in if measures is None else "the caller",
             "started": started,
             "timings_s": timings,
         }
@@ -339,15 +374,22 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                 # report.html + figures/, drawn from the tables and one top-view frame read from disk
                 from .report import write_report as _write_report
 
+                def finished_run():
+                    run["input_sha256"] = checksums.result()
+                    return run
+
                 t0 = time.perf_counter()
-                _write_report(result, staging.path)
+                # the checksum, still being computed while the figures are drawn, joins the page
+                _write_report(result, staging.path, run_record=finished_run)
                 lap("report", t0)
+            run["input_sha256"] = checksums.result()
             run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             run["wall_time_s"] = round(time.time() - t_start, 3)
             write_json(run, staging.path / "run.json")
             staging.commit()
             result.out_dir = out
         else:
+            run["input_sha256"] = checksums.result()
             run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
             run["wall_time_s"] = round(time.time() - t_start, 3)
         return result
@@ -357,6 +399,8 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             staging.abort()
         raise
     finally:
+        if pool is not None:
+            pool.close()
         if not isinstance(source, Stack):
             stack.close()
 

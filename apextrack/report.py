@@ -978,7 +978,7 @@ def render_html(data: ReportData, pngs: dict[str, bytes], title: str | None = No
 
 
 def write_report(source, folder: str | Path | None = None, *, frame: int | None = None,
-                 formats: Iterable[str] = ("png", "svg"), dpi: int = 100) -> Path:
+                 formats: Iterable[str] = ("png", "svg"), dpi: int = 100, run_record=None) -> Path:
     """Write ``report.html`` and ``figures/<name>.png|svg`` for one analysis.
 
     Parameters
@@ -992,6 +992,9 @@ def write_report(source, folder: str | Path | None = None, *, frame: int | None 
         Frame of the top-view figure (default: ``settings.report_frame``, else the last).
     formats : iterable of str
         File formats of the saved figures (``png``, ``svg``, ``pdf``).
+    run_record : callable, optional
+        Called once the figures are drawn; the run record it returns is the one the page shows
+        (an analysis hands over this way what it was still computing, e.g. the input checksum).
 
     Returns
     -------
@@ -1026,6 +1029,8 @@ def write_report(source, folder: str | Path | None = None, *, frame: int | None 
         # dropped, not cleared: Figure.clear() resets every axes first, a cost for nothing
         del fig
     out = folder / "report.html"
+    if run_record is not None:
+        data.run = dict(run_record())
     atomic_write_text(out, render_html(data, pngs))
     return out
 

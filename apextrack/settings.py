@@ -71,6 +71,7 @@ class Settings:
     permutation_prior: float = _p(0.05, "", "prior probability that an organ starts a permuted block of birth order", low=0.0, high=0.5)
     # --- computing (the results do not depend on these) ---------------------------------------
     threads: int = _p(0, "", "threads measuring frames of one stack at once (0: one per CPU core); every frame is measured on its own and the results are put together in frame order, so the tables are the same for any number", low=0, high=256)
+    frame_processes: bool = _p(True, "", "measure frames in worker processes (as many as threads) rather than threads where possible: on Linux, from a stack file, when the analysis is the only thread of its program; the tables are the same either way")
     frames_per_task: int = _p(32, "frames", "batch: a stack with more frames than this is split into tasks of this many frames, measured on any worker and put together by one task per stack (0: one task per stack)", low=0)
     # --- output ------------------------------------------------------------------------------
     report: bool = _p(True, "", "write report.html with figures")
@@ -98,7 +99,7 @@ class Settings:
 FIELD_NAMES = [f.name for f in fields(Settings)]
 #: Settings that change how the work is spread, never the results (left out of ``summary.json``,
 #: kept in ``run.json``).
-COMPUTING_FIELDS = ("threads", "frames_per_task")
+COMPUTING_FIELDS = ("threads", "frame_processes", "frames_per_task")
 
 
 def result_settings(s: "Settings") -> dict[str, Any]:

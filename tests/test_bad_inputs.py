@@ -282,3 +282,18 @@ def test_reader_errors_are_library_errors(tmp_path):
     s.frame(0)
     with pytest.raises(InputError, match="frame 1 holds NaN"):
         s.frame(1)
+
+
+def test_errors_cross_to_another_process_whole():
+    # an error raised where a frame is measured in a worker process is pickled back to the
+    # analysis: its file, message and hint must survive (the one-line message is built from them)
+    import pickle
+
+    from apextrack.errors import AnalysisError, InputError
+
+    for err in (InputError("the file ends inside frame 3", "plant_1.tif", "copy the file again"),
+                AnalysisError("no primordia found in any frame")):
+        back = pickle.loads(pickle.dumps(err))
+        assert type(back) is type(err)
+        assert (back.what, back.path, back.hint) == (err.what, err.path, err.hint)
+        assert str(back) == str(err) == err.one_line()

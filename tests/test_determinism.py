@@ -110,8 +110,63 @@ def test_one_and_two_threads_give_the_same_bytes(stack_and_first_run, tmp_path):
     # frames measured in a thread pool are put together in frame order: same tables
     stack, first = stack_and_first_run
     for n in (1, 2):
-        analyse(stack, out=tmp_path / f"threads{n}", progress=False, write_report=False, settings={"threads": n})
+        analyse(stack, out=tmp_path / f"threads{n}", progress=False, write_report=False,
+                settings={"threads": n, "frame_processes": False})
+        assert json.loads((tmp_path / f"threads{n}" / "run.json").read_text())["frames_measured_in"] == f"{n} thread(s)"
     assert fingerprint(tmp_path / "threads1") == fingerprint(tmp_path / "threads2") == fingerprint(first)
+
+
+def test_frames_measured_in_worker_processes_give_the_same_bytes(stack_and_first_run, tmp_path):
+    # a fresh program (one thread, so it may fork) measures the frames in two worker processes
+    # that open the stack themselves; the tables are those of one thread
+    if not sys.platform.startswith("linux"):
+        pytest.skip("frames are measured in processes on Linux only")
+    stack, first = stack_and_first_run
+    out = tmp_path / "processes"
+    code = (f"from apextrack.pipeline import analyse; "
+            f"analyse({str(stack)!r}, out={str(out)!r}, progress=False, write_report=False, "
+            f"settings={{'threads': 2, 'frame_processes': True}})")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert json.loads((out / "run.json").read_text())["frames_measured_in"] == "2 processes"
+    analyse(stack, out=tmp_path / "one", progress=False, write_report=False,
+            settings={"threads": 1, "frame_processes": False})
+    assert fingerprint(out) == fingerprint(tmp_path / "one") == fingerprint(first)
+
+
+def test_a_frame_failing_in_a_worker_process_is_reported_as_in_the_analysis(stack_and_first_run):
+    # the error raised in the worker reaches the caller whole (type, file, message); the pool
+    # is started in a fresh program, which has one thread
+    if not sys.platform.startswith("linux"):
+        pytest.skip("frames are measured in processes on Linux only")
+    stack, _ = stack_and_first_run
+    code = f"""
+import pickle, sys
+from apextrack.frame_pool import FramePool, can_fork
+from apextrack.pipeline import open_stack
+from apextrack.settings import Settings
+from apextrack.imaging import stage_context
+s = Settings(threads=2)
+assert can_fork()
+st = open_stack({str(stack)!r}, s)
+ctx, _ = stage_context(st, s)
+with FramePool({str(stack)!r}, s, 2) as pool:
+    ok = pool.submit(1, ctx).result()
+    assert ok.t == 1 and len(ok.blobs)
+    try:
+        pool.submit(st.n_frames + 5, ctx).result()
+    except Exception as exc:
+        print(type(exc).__name__, "|", exc)
+"""
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    name, _, message = proc.stdout.strip().partition(" | ")
+    with pytest.raises(Exception) as local:
+        from apextrack.pipeline import open_stack
+        from apextrack.settings import Settings
+
+        open_stack(stack, Settings()).frame(open_stack(stack, Settings()).n_frames + 5)
+    assert name == type(local.value).__name__ and message == str(local.value)
 
 
 def test_frames_measured_in_any_order_give_the_same_tables(stack_and_first_run):
