@@ -103,7 +103,10 @@ def _frame_pool(source, stack: Stack, s: Settings):
 
     if not can_fork():
         return None
-    return FramePool(source, s, min(n, stack.n_frames))
+    try:
+        return FramePool(source, s, min(n, stack.n_frames))
+    except Exception:  # workers that cannot start (e.g. no memory to fork): threads do the work
+        return None
 
 
 def _input_checksums(path, stop=None) -> dict[str, str]:
