@@ -1,4 +1,4 @@
-"""Worker processes that measure the frames of one stack file.
+"""Worker processes that measure the frames of one stack file (and draw its report).
 
 Measuring a frame (:func:`apextrack.imaging.measure_frame`) is numpy work interleaved with a
 good deal of Python; in threads the frames wait for each other on the interpreter lock. Forked
@@ -6,7 +6,9 @@ worker processes measure them side by side instead: each opens the stack file it
 file handles and memory map), measures the frames it is given with the shared
 :class:`~apextrack.imaging.StageContext` and sends the :class:`~apextrack.imaging.FrameMeasure`
 back. The measurements are the same as in the analysing process, so the tables do not depend on
-where frames were measured.
+where frames were measured. Once the frames are measured, the same workers load the plotting
+library while the analysing process links the tracks, and then draw the report's figures side
+by side (:meth:`FramePool.call`).
 
 Forking is safe only from a program with a single thread, so a pool is started only then (on
 Linux, where forking is cheap and copies the loaded modules), before the analysis starts threads
@@ -55,6 +57,14 @@ def _ready() -> None:
     """A task that does nothing (submitted to start the workers)."""
 
 
+def _load_report() -> None:
+    """Import the report's plotting library (in a worker, while the analysis links tracks)."""
+    import matplotlib.backends.backend_agg  # noqa: F401
+    import matplotlib.backends.backend_svg  # noqa: F401
+
+    from . import report  # noqa: F401
+
+
 def _measure_in_worker(t: int, ctx):
     from .imaging import _measure
 
@@ -88,6 +98,15 @@ class FramePool:
     def submit(self, t: int, ctx) -> Future:
         """Measure frame ``t`` with context ``ctx`` in a worker; a future of its FrameMeasure."""
         return self._ex.submit(_measure_in_worker, int(t), ctx)
+
+    def call(self, fn, *args) -> Future:
+        """Run ``fn(*args)`` in a worker (``fn`` a module-level function); a future of its result."""
+        return self._ex.submit(fn, *args)
+
+    def load_report(self) -> None:
+        """Have the workers import the plotting library now (returns at once)."""
+        for _ in range(self.size):
+            self._ex.submit(_load_report)
 
     def close(self) -> None:
         """Stop the workers (frames not yet started are cancelled)."""

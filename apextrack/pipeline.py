@@ -293,11 +293,11 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra, measures=measures,
                                               pool=pool)
         finally:
-            if pool is not None:
-                pool.close()
-                pool = None
             if writer is not None:
                 writer.close()
+        if pool is not None and staging is not None and (s.report if write_report is None else write_report):
+            # the workers load the plotting library while the tracks are linked here
+            pool.load_report()
         lap("image", t0)
         blank = list(centres.attrs.get("blank_frames", []))
         if blank and len(blank) == stack.n_frames:
@@ -383,7 +383,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
 
                 t0 = time.perf_counter()
                 # the checksum, still being computed while the figures are drawn, joins the page
-                _write_report(result, staging.path, run_record=finished_run)
+                _write_report(result, staging.path, run_record=finished_run, pool=pool)
                 lap("report", t0)
             run["input_sha256"] = checksums.result()
             run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")

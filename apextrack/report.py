@@ -977,8 +977,16 @@ def render_html(data: ReportData, pngs: dict[str, bytes], title: str | None = No
     return "\n".join(parts)
 
 
+def _draw_figure(data: ReportData, name: str, frame: int | None, formats, dpi: int) -> dict[str, bytes]:
+    """Figure ``name`` of :data:`FIGURES` drawn and rendered to ``{format: bytes}``."""
+    func = _FIGURE_FUNCS[name]
+    fig = func(data, frame) if name == "topview" else func(data)
+    # the figure is dropped, not cleared: Figure.clear() resets every axes first, a cost for nothing
+    return render_figure(fig, formats, dpi)
+
+
 def write_report(source, folder: str | Path | None = None, *, frame: int | None = None,
-                 formats: Iterable[str] = ("png", "svg"), dpi: int = 100, run_record=None) -> Path:
+                 formats: Iterable[str] = ("png", "svg"), dpi: int = 100, run_record=None, pool=None) -> Path:
     """Write ``report.html`` and ``figures/<name>.png|svg`` for one analysis.
 
     Parameters
@@ -995,6 +1003,9 @@ def write_report(source, folder: str | Path | None = None, *, frame: int | None 
     run_record : callable, optional
         Called once the figures are drawn; the run record it returns is the one the page shows
         (an analysis hands over this way what it was still computing, e.g. the input checksum).
+    pool : FramePool, optional
+        Worker processes (:class:`apextrack.frame_pool.FramePool`) that draw the figures side by
+        side; the files are the same as drawn here.
 
     Returns
     -------
@@ -1020,14 +1031,13 @@ def write_report(source, folder: str | Path | None = None, *, frame: int | None 
     pngs = {}
     fig_dir = folder / "figures"
     formats = [f.lower() for f in formats]
-    for name, func in _FIGURE_FUNCS.items():  # one figure alive at a time: memory stays small
-        fig = func(data, frame) if name == "topview" else func(data)
-        files = render_figure(fig, formats, dpi)
+    drawn = {name: pool.call(_draw_figure, data, name, frame, formats, dpi) for name in _FIGURE_FUNCS} \
+        if pool is not None else {}
+    for name in _FIGURE_FUNCS:  # here, one figure alive at a time: memory stays small
+        files = drawn[name].result() if drawn else _draw_figure(data, name, frame, formats, dpi)
         pngs[name] = files["png"]
         for fmt in formats:
             atomic_write_bytes(fig_dir / f"{name}.{fmt}", files[fmt])
-        # dropped, not cleared: Figure.clear() resets every axes first, a cost for nothing
-        del fig
     out = folder / "report.html"
     if run_record is not None:
         data.run = dict(run_record())

@@ -116,7 +116,7 @@ def test_one_and_two_threads_give_the_same_bytes(stack_and_first_run, tmp_path):
     assert fingerprint(tmp_path / "threads1") == fingerprint(tmp_path / "threads2") == fingerprint(first)
 
 
-def test_frames_measured_in_worker_processes_give_the_same_bytes(stack_and_first_run, tmp_path):
+def test_frames_and_figures_made_in_worker_processes_give_the_same_bytes(stack_and_first_run, tmp_path):
     # a fresh program (one thread, so it may fork) measures the frames in two worker processes
     # that open the stack themselves; the tables are those of one thread
     if not sys.platform.startswith("linux"):
@@ -124,14 +124,18 @@ def test_frames_measured_in_worker_processes_give_the_same_bytes(stack_and_first
     stack, first = stack_and_first_run
     out = tmp_path / "processes"
     code = (f"from apextrack.pipeline import analyse; "
-            f"analyse({str(stack)!r}, out={str(out)!r}, progress=False, write_report=False, "
+            f"analyse({str(stack)!r}, out={str(out)!r}, progress=False, "
             f"settings={{'threads': 2, 'frame_processes': True}})")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr
     assert json.loads((out / "run.json").read_text())["frames_measured_in"] == "2 processes"
-    analyse(stack, out=tmp_path / "one", progress=False, write_report=False,
-            settings={"threads": 1, "frame_processes": False})
+    analyse(stack, out=tmp_path / "one", progress=False, settings={"threads": 1, "frame_processes": False})
     assert fingerprint(out) == fingerprint(tmp_path / "one") == fingerprint(first)
+    # the report's figures, drawn by the worker processes, are those drawn in one process
+    figures = sorted(p.name for p in (tmp_path / "one" / "figures").iterdir())
+    assert len(figures) == 12 and figures == sorted(p.name for p in (out / "figures").iterdir())
+    for name in figures:
+        assert (out / "figures" / name).read_bytes() == (tmp_path / "one" / "figures" / name).read_bytes(), name
 
 
 def test_a_frame_failing_in_a_worker_process_is_reported_as_in_the_analysis(stack_and_first_run):
