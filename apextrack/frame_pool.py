@@ -59,7 +59,7 @@ def _ready() -> None:
 
 def _load_report() -> None:
     """Import the report's plotting library (in a worker, while the analysis links tracks)."""
-    import matplotlib.backends.backend_agg  # noqa: F401
+    import matplotlib.backends.backend_agg
     import matplotlib.backends.backend_svg  # noqa: F401
 
     from . import report  # noqa: F401
