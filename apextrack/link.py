@@ -707,14 +707,6 @@ def _inside_hull_of_frame(tracks: pd.DataFrame, first: pd.DataFrame) -> np.ndarr
 # ----------------------------------------------------------------------------- linking
 
 
-def _assign(cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Optimal one-to-one assignment (scipy's ``linear_sum_assignment``) of the rows of
-    ``cost`` to its columns, forbidden pairs marked ``inf``; returns the rows and columns."""
-    from scipy.optimize import linear_sum_assignment
-
-    return linear_sum_assignment(cost)
-
-
 def _link_level(src: np.ndarray, dst: np.ndarray, search_range: float) -> np.ndarray:
     """One frame's links: for each source position (predicted to this frame) the index of the
     destination it continues into, or -1.
@@ -723,8 +715,10 @@ def _link_level(src: np.ndarray, dst: np.ndarray, search_range: float) -> np.nda
     costing ``search_range²`` and no link being longer than ``search_range`` (the criterion of
     Crocker & Grier 1996, solved exactly). Sources and destinations are split into the groups
     that lie within reach of each other, and each group is solved as a linear assignment with
-    one "no link" column per source.
+    one "no link" column per source (scipy's ``linear_sum_assignment``; forbidden pairs cost ``inf``).
     """
+    from scipy.optimize import linear_sum_assignment
+    from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
     from scipy.spatial import cKDTree
 
@@ -737,8 +731,6 @@ def _link_level(src: np.ndarray, dst: np.ndarray, search_range: float) -> np.nda
         return out
     i, j, d = pairs["i"].astype(np.int64), pairs["j"].astype(np.int64), pairs["v"]
     # groups: connected components of the bipartite graph sources (0…k-1) + destinations (k…)
-    from scipy.sparse import coo_matrix
-
     graph = coo_matrix((np.ones(len(i)), (i, k + j)), shape=(k + m, k + m))
     _, label = connected_components(graph, directed=False)
     order = np.argsort(label[i], kind="stable")
@@ -754,7 +746,7 @@ def _link_level(src: np.ndarray, dst: np.ndarray, search_range: float) -> np.nda
         cost = np.full((len(us), len(ud) + len(us)), np.inf)
         cost[ri, cj] = gd * gd
         cost[np.arange(len(us)), len(ud) + np.arange(len(us))] = r2
-        rows, cols = _assign(cost)
+        rows, cols = linear_sum_assignment(cost)
         linked = cols < len(ud)
         out[us[rows[linked]]] = ud[cols[linked]]
     return out
@@ -766,9 +758,9 @@ def _link_frames(frame: np.ndarray, x: np.ndarray, y: np.ndarray, search_range: 
 
     Each frame's detections continue the tracks seen in the previous frame or, up to
     ``memory`` frames back, missed since (frames are counted by their numbers, so a frame
-    without detections counts as a missed one); the links
-    of a frame are found by :func:`_link_level` from where each track's last detection is
-    predicted to be: ``predict(x, y, from_frames, to_frame) -> (x, y)``, default unmoved.
+    without detections counts as a missed one); the links of a frame are found by
+    :func:`_link_level` from where each track's last detection is predicted to be:
+    ``predict(x, y, from_frames, to_frame) -> (x, y)``, default unmoved.
     Detections that continue no track start one. Labels are numbered in order of appearance.
     """
     n = len(frame)
