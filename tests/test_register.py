@@ -148,3 +148,34 @@ def test_warp_view_matches_scipy_affine_transform(angle_deg, shift):
                                cval=float(view.min()))
     assert ours.dtype == np.float32 and ours.shape == view.shape
     assert np.abs(ours - ref).max() < 1e-5
+
+
+def test_all_turns_at_once_match_the_turn_by_turn_search():
+    # the vectorised search over trial turns (a few dozen points) must pick the same turn and
+    # the same pairs as trying each turn with mutual nearest neighbours (the path larger point
+    # sets take)
+    from apextrack.register import _best_turn, _mutual_nn, _rot
+
+    rng = np.random.default_rng(7)
+    angles = np.arange(-15.0, 15.0 + 1e-9, 1.0)
+    for _ in range(200):
+        n, m = int(rng.integers(3, 40)), int(rng.integers(3, 40))
+        prev = rng.uniform(0, 200, (n, 2))
+        th = np.radians(rng.uniform(-10, 10))
+        rot = np.array([[np.cos(th), np.sin(th)], [-np.sin(th), np.cos(th)]])
+        cur = ((prev - 100) @ rot.T + 100 + rng.normal(0, 1.5, (n, 2)))[rng.permutation(n)][:m]
+        if m > n:
+            cur = np.vstack([cur, rng.uniform(0, 200, (m - n, 2))])
+        pivot, shift = rng.uniform(50, 150, 2), rng.normal(0, 2, 2)
+        best, best_score = None, None
+        for a in angles:
+            pred = pivot + (prev - pivot) @ _rot(a).T + shift
+            ia, ib = _mutual_nn(pred, cur, 8.0)
+            if ia.size:
+                score = (ia.size, -float(np.sum(np.hypot(*(pred[ia] - cur[ib]).T))))
+                if best_score is None or score > best_score:
+                    best_score, best = score, (ia, ib)
+        got = _best_turn(prev, cur, pivot, shift, angles, 8.0)
+        assert (got is None) == (best is None)
+        if got is not None:
+            assert np.array_equal(got[0], best[0]) and np.array_equal(got[1], best[1])
