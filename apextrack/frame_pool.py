@@ -158,9 +158,11 @@ class FramePool:
                 self._conns.append(here)
                 self._busy.append([])
             # started after the forks: the workers copy no thread of the pool
-            self._reader = threading.Thread(target=self._read, name="apextrack-worker-results", daemon=True)
+            self._reader = threading.Thread(target=self._guarded, args=(self._read,),
+                                            name="apextrack-worker-results", daemon=True)
             self._reader.start()
-            self._writer = threading.Thread(target=self._write, name="apextrack-worker-jobs", daemon=True)
+            self._writer = threading.Thread(target=self._guarded, args=(self._write,),
+                                            name="apextrack-worker-jobs", daemon=True)
             self._writer.start()
         except BaseException:
             self.close()
@@ -279,6 +281,16 @@ class FramePool:
                     with self._cond:
                         self._fail(sentinels[obj])
                     return
+
+    def _guarded(self, loop) -> None:
+        """Run one of the pool's threads; should it fail, every wait raises instead of hanging."""
+        try:
+            loop()
+        except BaseException as exc:  # noqa: BLE001  - handed to the waiting caller
+            with self._cond:
+                if self._error is None and not self._closing:
+                    self._error = RuntimeError(f"the worker pool's {loop.__name__[1:]} thread failed: {exc!r}")
+                self._cond.notify_all()
 
     def _fail(self, i: int) -> None:
         """Worker ``i`` ended with jobs in hand (the caller holds the lock): every wait raises."""
