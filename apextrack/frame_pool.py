@@ -48,14 +48,21 @@ def can_fork() -> bool:
             and threading.active_count() == 1 and not mp.current_process().daemon)
 
 
-def _worker_main(conn, path: str, settings: Settings) -> None:
+def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
     """A worker: open the stack anew, then run the jobs that come down the pipe until told to
-    stop (``None``) or the pipe closes. Ctrl-C is left to the analysing process."""
+    stop (``None``), the pipe closes or the analysing process is gone. Ctrl-C is left to the
+    analysing process."""
+    import os
     import signal
     import warnings
 
     from .pipeline import open_stack
 
+    parent = os.getppid()
+    # the analysing process's ends of the pipes, copied by the fork: closed here, so that a pipe
+    # reads as closed as soon as the analysing process ends
+    for c in inherited:
+        c.close()
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the analysing process has reported them
@@ -63,6 +70,11 @@ def _worker_main(conn, path: str, settings: Settings) -> None:
     _WORKER["settings"] = settings
     while True:
         try:
+            # a look every second whether the analysing process still runs (its end of the
+            # pipe may live on in a process it started)
+            while not conn.poll(1.0):
+                if os.getppid() != parent:
+                    return
             raw = conn.recv_bytes()
         except (EOFError, OSError):
             return
@@ -150,8 +162,8 @@ class FramePool:
         try:
             for i in range(self.size):
                 here, there = fork.Pipe(duplex=True)
-                p = fork.Process(target=_worker_main, args=(there, self.path, settings), daemon=True,
-                                 name=f"apextrack-worker-{i}")
+                p = fork.Process(target=_worker_main, args=(there, [*self._conns, here], self.path, settings),
+                                 daemon=True, name=f"apextrack-worker-{i}")
                 p.start()
                 there.close()
                 self._procs.append(p)

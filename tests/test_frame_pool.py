@@ -114,3 +114,36 @@ def test_frames_measured_in_workers_equal_those_measured_here(stack):
         print(len(frames))
     """, stack)
     assert int(out) >= 5
+
+
+def test_workers_end_when_the_analysing_process_dies(stack):
+    # a crash of the analysing process (no clean-up at all) must not leave workers behind
+    # holding its output pipes: they see their pipe close (or their parent change) and end
+    import os
+    import time
+
+    code = textwrap.dedent(f"""
+        import os
+        from apextrack.frame_pool import FramePool
+        from apextrack.settings import Settings
+        pool = FramePool({stack!r}, Settings(), 2)
+        print(" ".join(str(p.pid) for p in pool._procs), flush=True)
+        os._exit(3)
+    """)
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 3, proc.stderr
+    pids = [int(p) for p in proc.stdout.split()]
+    assert len(pids) == 2
+
+    def alive(pid):
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        with open(f"/proc/{pid}/stat") as fh:  # a zombie awaiting its reaper has ended
+            return fh.read().split(")")[-1].split()[0] != "Z"
+
+    deadline = time.time() + 10
+    while any(alive(p) for p in pids) and time.time() < deadline:
+        time.sleep(0.1)
+    assert not any(alive(p) for p in pids)
