@@ -95,11 +95,16 @@ def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
 
 
 def _load_report() -> None:
-    """Import the report's plotting library (in a worker, while the analysis links tracks)."""
-    import matplotlib.backends.backend_agg
+    """Load the report's plotting library in a worker while the analysis links the tracks, and
+    draw one small figure with text (the fonts and the renderer's first-use work)."""
     import matplotlib.backends.backend_svg  # noqa: F401
 
-    from . import report  # noqa: F401
+    from . import report
+
+    fig = report._figure((1.0, 1.0))
+    ax = fig.add_subplot()
+    ax.set_title("0")
+    report.render_figure(fig, ("png",), 50)
 
 
 def _measure_in_worker(t: int, ctx):
