@@ -755,10 +755,6 @@ _FIGURE_FUNCS = {"topview": fig_topview, "divergence": fig_divergence, "polar": 
                  "growth": fig_growth, "emergence": fig_emergence, "parastichies": fig_parastichies}
 
 
-_FIGURE_FUNCS = {"topview": fig_topview, "divergence": fig_divergence, "polar": fig_polar,
-                 "growth": fig_growth, "emergence": fig_emergence, "parastichies": fig_parastichies}
-
-
 def make_figures(data: ReportData, frame: int | None = None) -> dict[str, Any]:
     """Every figure of :data:`FIGURES` as a matplotlib Figure (Agg canvas), by name."""
     figs = {}
