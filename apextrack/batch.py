@@ -213,16 +213,23 @@ class _TaskFailed(Exception):
     """A block of frames of this stack could not be measured (the message is the one line)."""
 
 
-def _open_for_settings(path: str, s: Settings):
-    """The stack at ``path`` opened as :func:`apextrack.pipeline.analyse` opens it (its
-    warnings are the stack task's to report)."""
-    import warnings
-
+def _on_stack(path: str, settings: dict, work, failing: str):
+    """``work(stack, settings)`` on the stack at ``path``, opened here as the analysis opens it
+    (its warnings are the stack task's to report) and closed after; an error as one line
+    (``failing``: what was being done, for running out of memory)."""
     from .pipeline import open_stack
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return open_stack(path, s)
+    s = from_dict(settings) if settings else Settings()
+    try:
+        stack = open_stack(path, s, quiet=True)
+        try:
+            return work(stack, s)
+        finally:
+            stack.close()
+    except ApextrackError as exc:
+        return exc.one_line()
+    except MemoryError:
+        return f"{path}: out of memory {failing}"
 
 
 def stage_context_task(path: str, settings: dict):
@@ -231,17 +238,8 @@ def stage_context_task(path: str, settings: dict):
     one line."""
     from .imaging import stage_context
 
-    s = from_dict(settings) if settings else Settings()
-    try:
-        stack = _open_for_settings(path, s)
-        try:
-            return stage_context(stack, s)[0]
-        finally:
-            stack.close()
-    except ApextrackError as exc:
-        return exc.one_line()
-    except MemoryError:
-        return f"{path}: out of memory finding the stack's first frame with signal"
+    return _on_stack(path, settings, lambda stack, s: stage_context(stack, s)[0],
+                     "finding the stack's first frame with signal")
 
 
 def measure_frames_task(path: str, settings: dict, first: int, stop: int, ctx) -> list | str:
@@ -256,17 +254,9 @@ def measure_frames_task(path: str, settings: dict, first: int, stop: int, ctx) -
 
     if isinstance(ctx, str):  # the context could not be found: its error is this block's
         return ctx
-    s = from_dict(settings) if settings else Settings()
-    try:
-        stack = _open_for_settings(path, s)
-        try:
-            return list(measure_frames(stack, s, ctx, frames=range(first, stop), threads=1))
-        finally:
-            stack.close()
-    except ApextrackError as exc:
-        return exc.one_line()
-    except MemoryError:
-        return f"{path}: out of memory measuring frames {first}–{stop - 1}"
+    return _on_stack(path, settings,
+                     lambda stack, s: list(measure_frames(stack, s, ctx, frames=range(first, stop), threads=1)),
+                     f"measuring frames {first}–{stop - 1}")
 
 
 def frame_blocks(n_frames: int, frames_per_task: int) -> list[tuple[int, int]]:
@@ -288,8 +278,10 @@ def frame_blocks(n_frames: int, frames_per_task: int) -> list[tuple[int, int]]:
 def _n_frames(path: Path, s: Settings) -> int | None:
     """Frames of the stack at ``path`` (header only), or None when it cannot be opened (its task
     will then report why)."""
+    from .pipeline import open_stack
+
     try:
-        stack = _open_for_settings(str(path), s)
+        stack = open_stack(str(path), s, quiet=True)
     except ApextrackError:
         return None
     try:

@@ -54,7 +54,6 @@ def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
     analysing process."""
     import os
     import signal
-    import warnings
 
     from .pipeline import open_stack
 
@@ -64,9 +63,7 @@ def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
     for c in inherited:
         c.close()
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # the analysing process has reported them
-        _WORKER["stack"] = open_stack(path, settings)
+    _WORKER["stack"] = open_stack(path, settings, quiet=True)  # the analysis reports the warnings
     _WORKER["settings"] = settings
     while True:
         try:

@@ -67,9 +67,14 @@ def demo_stack_path(name: str = "spiral") -> Path:
     return Path(_demo(name))
 
 
-def open_stack(source, s: Settings) -> Stack:
+def open_stack(source, s: Settings, quiet: bool = False) -> Stack:
     """The stack at ``source`` with the metadata overrides of ``s`` (pixel size, z step,
-    interval, time axis), as every analysis opens it."""
+    interval, time axis), as every analysis opens it. ``quiet``: its warnings are not raised
+    (a worker opening the stack again; the analysis reports them once)."""
+    if quiet:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return open_stack(source, s)
     return read_stack(source, pixel_size_um=s.pixel_size_um, z_step_um=s.z_step_um, interval_h=s.interval_h,
                       time_axis=s.time_axis)
 
