@@ -202,13 +202,6 @@ def analyse_stack_task(path: str, out_dir: str, settings: dict, overwrite: bool 
     return row
 
 
-def _experiment_report_task(experiment: pd.DataFrame, out: str, title: str, expected_angle_deg: float) -> str:
-    """Write ``experiment_report.html`` (in a worker); returns its path."""
-    from .report import write_experiment_report
-
-    return str(write_experiment_report(experiment, out, title=title, expected_angle_deg=expected_angle_deg))
-
-
 class _TaskFailed(Exception):
     """A block of frames of this stack could not be measured (the message is the one line)."""
 
@@ -447,14 +440,14 @@ def run_batch(source, out: str | Path, settings: Settings | dict | None = None, 
         if report:
             # drawn by a worker, whose plotting library is loaded already (the stacks' reports);
             # here when the cluster cannot (e.g. it does not see this folder)
+            from .report import write_experiment_report
+
             title = f"apextrack experiment: {out.name}"
             try:
-                rep = Path(client.submit(_experiment_report_task, df, str(out.resolve()), title,
-                                         s.expected_angle_deg, pure=False,
+                rep = Path(client.submit(write_experiment_report, df, str(out.resolve()), title=title,
+                                         expected_angle_deg=s.expected_angle_deg, pure=False,
                                          key=f"apextrack-experiment-report-{time.time_ns()}").result())
             except Exception:
-                from .report import write_experiment_report
-
                 rep = write_experiment_report(df, out, title=title, expected_angle_deg=s.expected_angle_deg)
     finally:
         if own_client:
