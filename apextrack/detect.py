@@ -1022,21 +1022,26 @@ def detect_blobs_3d(volume: np.ndarray, sigmas, z_ratio: float, min_snr: float =
     return df.sort_values(["z_px", "y_px", "x_px"], kind="stable").reset_index(drop=True)
 
 
-def detections_to_um(df: pd.DataFrame, frame: int, time_h: float, pixel_size_um: float) -> pd.DataFrame:
-    """Add ``frame``, ``time_h`` and the µm columns of the detections table to a pixel table."""
-    out = pd.DataFrame({
-        "frame": np.full(len(df), frame, dtype=np.int64),
-        "time_h": np.full(len(df), time_h, dtype=float),
-        "x_um": df["x_px"].to_numpy(float) * pixel_size_um,
-        "y_um": df["y_px"].to_numpy(float) * pixel_size_um,
-        "radius_um": df["radius_px"].to_numpy(float) * pixel_size_um,
-        "intensity": df["intensity"].to_numpy(float),
-        "snr": df["snr"].to_numpy(float),
-        "background": df["background"].to_numpy(float),
-        "integrated_intensity": df["integrated_intensity"].to_numpy(float) if "integrated_intensity" in df else np.nan,
-        "x_px": df["x_px"].to_numpy(float),
-        "y_px": df["y_px"].to_numpy(float),
-    })
-    if "z_px" in df:
-        out["z_px"] = df["z_px"].to_numpy(float)
+def detection_columns(df: pd.DataFrame, frame: int, time_h: float, pixel_size_um: float) -> dict[str, np.ndarray]:
+    """The columns of the detections table for one frame's pixel table: ``frame``, ``time_h``,
+    the µm columns, the photometry and the pixel positions, as arrays (one table is made of
+    every frame's columns at the end, which costs far less than a table per frame)."""
+    n = len(df)
+    col = {c: df[c].to_numpy(float) for c in ("x_px", "y_px", "radius_px", "intensity", "snr", "background",
+                                               "integrated_intensity", "z_px") if c in df.columns}
+    out = {
+        "frame": np.full(n, frame, dtype=np.int64),
+        "time_h": np.full(n, time_h, dtype=float),
+        "x_um": col["x_px"] * pixel_size_um,
+        "y_um": col["y_px"] * pixel_size_um,
+        "radius_um": col["radius_px"] * pixel_size_um,
+        "intensity": col["intensity"],
+        "snr": col["snr"],
+        "background": col["background"],
+        "integrated_intensity": col["integrated_intensity"] if "integrated_intensity" in col else np.full(n, np.nan),
+        "x_px": col["x_px"],
+        "y_px": col["y_px"],
+    }
+    if "z_px" in col:
+        out["z_px"] = col["z_px"]
     return out

@@ -23,7 +23,7 @@ from typing import Callable, Iterable, Iterator
 import numpy as np
 import pandas as pd
 
-from .detect import detect_blobs, detections_to_um, scales_px
+from .detect import detect_blobs, detection_columns, scales_px
 from .register import warp_view
 from .settings import Settings
 from .stack import Stack
@@ -197,11 +197,29 @@ def _opening_context(sigmas: np.ndarray, s: Settings, t: int) -> StageContext:
     return StageContext(sigmas, {"auto": "auto", "+z": 1, "-z": -1}[s.surface_side], None, t)
 
 
+def check_stage_settings(stack: Stack, s: Settings) -> None:
+    """Fail early, before any frame is measured, on settings this stack cannot take: an apex
+    centre outside the image, a membrane channel it does not have."""
+    if s.centre_um is not None:
+        px = stack.pixel_size_um[0]
+        ny, nx = stack.shape_yx
+        cx, cy = s.centre_um
+        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
+            from .errors import SettingsError
+
+            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
+                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
+                                "give --centre X,Y in µm inside the image")
+    if s.membrane_channel is not None:
+        stack.channel_index(s.membrane_channel)
+
+
 def stage_context(stack: Stack, s: Settings) -> tuple[StageContext, dict[int, FrameMeasure]]:
     """Decide what every frame's measurement shares, from the first frame with signal: the side
     the dome faces (when ``surface_side`` is ``auto``) and the dome that starts every other
     frame's fit. Returns the context and the frames measured on the way (the blank frames
     before, and that first frame), so that they need not be measured again."""
+    check_stage_settings(stack, s)
     sigmas = stack_sigmas(stack, s)
     done: dict[int, FrameMeasure] = {}
     for t in range(stack.n_frames):
@@ -316,16 +334,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     px = stack.pixel_size_um[0]
     dz = stack.pixel_size_um[2] if stack.has_z else math.nan
     ny, nx = stack.shape_yx
-    if s.centre_um is not None:
-        cx, cy = s.centre_um
-        if not (0 <= cx <= nx * px and 0 <= cy <= ny * px):
-            from .errors import SettingsError
-
-            raise SettingsError(f"apex centre ({cx:g}, {cy:g}) µm lies outside the image "
-                                f"(0–{nx * px:g} × 0–{ny * px:g} µm)", stack.path,
-                                "give --centre X,Y in µm inside the image")
-    if s.membrane_channel is not None:
-        stack.channel_index(s.membrane_channel)  # fail early on a bad channel
+    check_stage_settings(stack, s)
     reg = Registrar((ny, nx), px, match_tol_px=max(s.link_search_um / px, 3.0), enabled=bool(s.register))
     det_parts, centre_rows, blank = [], [], []
     times = stack.times_h()
@@ -355,7 +364,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
             if is_blank:
                 blank.append(t)
             rx, ry, rr = m.region
-            det = detections_to_um(m.blobs, t, float(times[t]), px)
+            det = detection_columns(m.blobs, t, float(times[t]), px)
             if dome is not None:
                 apex_px = (dome["x_um"] / px, dome["y_um"] / px)
             elif dome_ref is not None and is3d and not is_blank:
@@ -363,14 +372,14 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                 apex_px = tuple(float(v) for v in reg.from_reference(*dome_ref))
             else:
                 apex_px = (rx, ry)
-            reg.update(t, view, det[["x_px", "y_px"]].to_numpy(float), apex_px)
-            if "z_px" in det.columns:
-                det["z_um"] = det.pop("z_px").to_numpy(float) * dz
+            reg.update(t, view, np.column_stack([det["x_px"], det["y_px"]]), apex_px)
+            if "z_px" in det:
+                det["z_um"] = det.pop("z_px") * dz
             elif hm is not None:
-                det["z_um"] = hm.at(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+                det["z_um"] = hm.at(det["x_px"], det["y_px"])
             elif hm_last is not None and is3d and not is_blank:
                 # the last height map, read where each detection lies in that map's own frame
-                xr0, yr0 = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+                xr0, yr0 = reg.to_reference(det["x_px"], det["y_px"])
                 mt = hm_matrix
                 det["z_um"] = hm_last.at(mt[0, 0] * xr0 + mt[0, 1] * yr0 + mt[0, 2],
                                          mt[1, 0] * xr0 + mt[1, 1] * yr0 + mt[1, 2])
@@ -387,7 +396,7 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
                     while len(out_jobs) > 2:
                         out_jobs.popleft().result()
             # coordinates into the first frame's frame of reference
-            xr, yr = reg.to_reference(det["x_px"].to_numpy(float), det["y_px"].to_numpy(float))
+            xr, yr = reg.to_reference(det["x_px"], det["y_px"])
             det["x_um"], det["y_um"] = xr * px, yr * px
             vx, vy = reg.to_reference(rx, ry)
             crow = {"frame": t, "time_h": float(times[t]), "view_x_um": float(vx) * px, "view_y_um": float(vy) * px,
@@ -441,6 +450,21 @@ def image_stage(stack: Stack, s: Settings, progress: bool = True,
     centres.attrs["blank_frames"] = blank  # frames whose pixels all hold one value
     if extra is not None:
         extra["registration"] = reg.table()
-    detections = pd.concat(det_parts, ignore_index=True) if det_parts else pd.DataFrame()
+    detections = _table_of(det_parts)
     detections.insert(0, "detection_id", np.arange(len(detections), dtype=np.int64))
     return detections, centres
+
+
+def _table_of(parts: list[dict[str, np.ndarray]]) -> pd.DataFrame:
+    """One table of the frames' detection columns, in order; a column some frames lack is NaN
+    there (the columns in order of first appearance, as :func:`pandas.concat` gives them)."""
+    names: dict[str, None] = {}
+    for part in parts:
+        names.update(dict.fromkeys(part))
+    if not names:
+        return pd.DataFrame()
+    cols = {}
+    for c in names:
+        pieces = [part[c] if c in part else np.full(len(part["frame"]), np.nan) for part in parts]
+        cols[c] = np.concatenate(pieces)
+    return pd.DataFrame(cols)

@@ -23,7 +23,7 @@ from . import __version__
 from .apex import choose_centres
 from .birth import order_primordia
 from .errors import AnalysisError
-from .imaging import TopViewWriter, _n_threads, image_stage
+from .imaging import TopViewWriter, _n_threads, image_stage, measure_frames, stage_context
 from .link import add_polar, link_tracks
 from .results import StagedFolder, check_output_dir, write_result_tables
 from .settings import Settings, from_dict, result_settings
@@ -275,9 +275,16 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             print(f"apextrack: warning: {w.message}", file=sys.stderr)
     stack.channel_index(s.channel)  # fail early on a bad channel
     lap("read", t0)
-    # worker processes are forked first, while this program has no other thread
-    pool = _frame_pool(source, stack, s) if measures is None else None
-    measured_in = f"{pool.size} processes" if pool is not None else f"{_n_threads(s.threads)} thread(s)"
+    t_image = time.perf_counter()
+    pool, measured_in = None, "the caller"
+    if measures is None:
+        # the first frame with signal is measured here, then the worker processes are forked
+        # (while this program has no other thread): they start with what that frame loaded and
+        # warmed up (libraries, caches) instead of each loading it again
+        ctx, done = stage_context(stack, s)
+        pool = _frame_pool(source, stack, s)
+        measured_in = f"{pool.size} processes" if pool is not None else f"{_n_threads(s.threads)} thread(s)"
+        measures = measure_frames(stack, s, ctx, done=done, pool=pool)
     try:
         checksums = _Checksums(stack.path)
         staging = StagedFolder(out) if out is not None else None
@@ -292,7 +299,6 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
             if writer is not None:
                 writer.write(t, view)
 
-        t0 = time.perf_counter()
         image_extra: dict = {}
         try:
             detections, centres = image_stage(stack, s, progress, on_frame, extra=image_extra, measures=measures,
@@ -303,7 +309,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         if pool is not None and staging is not None and (s.report if write_report is None else write_report):
             # the workers load the plotting library while the tracks are linked here
             pool.load_report()
-        lap("image", t0)
+        lap("image", t_image)
         blank = list(centres.attrs.get("blank_frames", []))
         if blank and len(blank) == stack.n_frames:
             raise AnalysisError("every frame is uniform (all pixels one value): the image holds no signal",
@@ -365,7 +371,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                       "interval_h": stack.interval_h, "channel_names": stack.channel_names},
             "warnings": stack_warnings,
             "settings": s.to_dict(),
-            "frames_measured_in": measured_in if measures is None else "the caller",
+            "frames_measured_in": measured_in,
             "started": started,
             "timings_s": timings,
         }
