@@ -31,8 +31,9 @@ def centre_from_tracks(tracks: "pd.DataFrame", min_frames: int = 3, drift: bool 
     rate γ (r ∝ exp(γt), Richards 1951), so their positions expand homothetically about the
     centre, which may itself drift linearly: ``p_i(t) = c0 + d·t + a_i·exp(γt)``. For a given γ
     the model is linear in ``c0``, ``d`` and the per-track offsets ``a_i``; γ is found by a
-    bounded one-dimensional search on the residual. The centre is thus where the velocity field
-    of the primordia extrapolates to zero.
+    bounded one-dimensional search on the residual (for each γ the offsets are eliminated track
+    by track, leaving a least-squares problem in ``c0`` and ``d`` alone). The centre is thus
+    where the velocity field of the primordia extrapolates to zero.
 
     Parameters
     ----------
@@ -54,31 +55,35 @@ def centre_from_tracks(tracks: "pd.DataFrame", min_frames: int = 3, drift: bool 
     """
     from scipy.optimize import minimize_scalar
 
-    groups = [g for _, g in tracks.groupby("track_id", sort=True) if g["time_h"].nunique() >= min_frames]
-    if len(groups) < 3:
+    n_times = tracks.groupby("track_id")["time_h"].transform("nunique").to_numpy()
+    rows = np.flatnonzero(n_times >= min_frames)
+    # the rows track by track (in order of track id, each track's rows in their given order)
+    rows = rows[np.argsort(tracks["track_id"].to_numpy()[rows], kind="stable")]
+    tid, ids = pd.factorize(tracks["track_id"].to_numpy()[rows], sort=True)
+    n = len(ids)
+    if n < 3:
         return None
-    tid = np.concatenate([np.full(len(g), i) for i, g in enumerate(groups)])
-    t = np.concatenate([g["time_h"].to_numpy(float) for g in groups])
-    t = t - 0.0
-    xy = np.column_stack([np.concatenate([g["x_um"].to_numpy(float) for g in groups]),
-                          np.concatenate([g["y_um"].to_numpy(float) for g in groups])])
-    n = len(groups)
+    first = np.flatnonzero(np.r_[True, tid[1:] != tid[:-1]])
+    t = tracks["time_h"].to_numpy(float)[rows]
+    xy = np.column_stack([tracks["x_um"].to_numpy(float)[rows], tracks["y_um"].to_numpy(float)[rows]])
     t_mid = float(np.mean(t))
-
-    def design(gamma):
-        cols = [np.ones_like(t)]
-        if drift:
-            cols.append(t)
-        base = np.column_stack(cols)
-        e = np.exp(gamma * (t - t_mid))
-        per_track = np.zeros((len(t), n))
-        per_track[np.arange(len(t)), tid] = e
-        return np.hstack([base, per_track])
+    base = np.column_stack([np.ones_like(t), t] if drift else [np.ones_like(t)])
 
     def solve(gamma):
-        a = design(gamma)
-        coef, *_ = np.linalg.lstsq(a, xy, rcond=None)
-        res = xy - a @ coef
+        # An offset's column is nonzero only on its own track's rows, so for any centre terms
+        # the best offsets follow track by track: a_k = Σ_k e·(p − base·coef) / Σ_k e². Putting
+        # them back leaves the least squares of each column with its projection on e removed
+        # within every track, one or two columns instead of 2 + n: O(N) per γ, no dense solve
+        # of the whole design.
+        e = np.exp(gamma * (t - t_mid))
+        ee = np.add.reduceat(e * e, first)
+
+        def within(v):
+            return v - e[:, None] * (np.add.reduceat(e[:, None] * v, first) / ee[:, None])[tid]
+
+        pb, pxy = within(base), within(xy)
+        coef, *_ = np.linalg.lstsq(pb, pxy, rcond=None)
+        res = pxy - pb @ coef
         return coef, float((res ** 2).sum())
 
     fit = minimize_scalar(lambda g: solve(g)[1], bounds=(1e-5, max_rate_per_h), method="bounded",

@@ -128,17 +128,21 @@ CENTRE_STEP_SD_UM = 0.5
 
 class _ProfiledSolver:
     """Least squares of the centres and offsets for a fixed λ = γ + iω, for one set of
-    detections (built once, called for every λ the search tries).
+    detections (built once, called for every λ the search tries), and the search for λ itself.
 
     The model ``z_i = c_{f_i} + exp(λ(t_i − t_ref))·a_{k_i}`` (plus the prior rows
     ``smooth·(c_{f−1} − 2c_f + c_{f+1}) = 0``, ``smooth`` in units of the position error) is
     linear in the centres c and offsets a. Its normal equations have a diagonal offset block,
     so the offsets are eliminated; what is left for the centres (the Schur complement) is
     Hermitian and banded, since a track couples only the frames it spans. It is assembled from
-    the pairs of detections of each track and solved by banded Cholesky (LAPACK ``zpbsv``
-    through :func:`scipy.linalg.solveh_banded`; least squares when not positive definite). The
+    the pairs of detections of each track and factorised by banded Cholesky (LAPACK ``zpbtrf``
+    through :func:`scipy.linalg.cholesky_banded`; least squares when not positive definite). The
     cost grows with the number of detections (times the frames a primordium stays in view), not
     with the square of the number of frames as a dense solve of the whole design matrix did.
+
+    The residual left for each λ (the profiled SSE) is minimised over (γ, ω) by
+    :meth:`minimise`, damped Newton steps on the exact gradient and Hessian of the profiled SSE
+    (:meth:`derivatives`; variable projection, Golub & Pereyra 1973).
     """
 
     def __init__(self, t, z, fidx, tid, n_frames: int, n: int, t_ref: float, smooth: float = 0.0):
@@ -149,8 +153,7 @@ class _ProfiledSolver:
         self.n_f, self.n = int(n_frames), int(n)
         self.smooth = float(smooth) if (smooth > 0 and n_frames > 2) else 0.0
         self.cnt = np.bincount(self.fidx, minlength=self.n_f).astype(float)
-        self.rf = (np.bincount(self.fidx, weights=self.z.real, minlength=self.n_f)
-                   + 1j * np.bincount(self.fidx, weights=self.z.imag, minlength=self.n_f))
+        self.rf = self._sum_by(self.fidx, self.z, self.n_f)
         # pairs (i, j) of detections of one track with f_i ≤ f_j: entries of the upper band
         order = np.lexsort((self.fidx, self.tid))
         bounds = np.flatnonzero(np.diff(self.tid[order])) + 1
@@ -165,7 +168,6 @@ class _ProfiledSolver:
         d = self.fidx[self.pj] - self.fidx[self.pi]
         self.u = max(int(d.max()) if d.size else 0, 2 if self.smooth else 0)
         self.band_pos = (self.u - d) * self.n_f + self.fidx[self.pj]
-        self.diag_pos = self.u * self.n_f + np.arange(self.n_f)
         self.pair_k = self.tid[self.pi]
         if self.smooth:
             # DᵀD of the second difference, upper band: diagonal, first and second off-diagonal
@@ -184,41 +186,149 @@ class _ProfiledSolver:
             sband[self.u - 2, 2:] = d2
             self.sband = self.smooth ** 2 * sband
 
-    def __call__(self, gamma: float, omega: float) -> tuple[np.ndarray, float]:
-        """Coefficients ``[c_0 … c_{F−1}, a_0 … a_{n−1}]`` and the residual sum of squares."""
-        from scipy.linalg import solveh_banded
+    @staticmethod
+    def _sum_by(idx: np.ndarray, w: np.ndarray, size: int) -> np.ndarray:
+        """Sums of the complex ``w`` over the groups ``idx`` (0 … size − 1); ``w`` 1-D or one column
+        per quantity."""
+        if w.ndim == 1:
+            return (np.bincount(idx, weights=w.real, minlength=size)
+                    + 1j * np.bincount(idx, weights=w.imag, minlength=size))
+        return np.column_stack([_ProfiledSolver._sum_by(idx, w[:, j], size) for j in range(w.shape[1])])
 
-        n_f, n, fidx, tid, z = self.n_f, self.n, self.fidx, self.tid, self.z
-        e = np.exp((gamma + 1j * omega) * self.tau)
+    @staticmethod
+    def _newton_step(hess: np.ndarray, grad: np.ndarray, damping: float) -> np.ndarray | None:
+        """``−(H + damping·I)⁻¹·g`` for the 2 × 2 Hessian ``H``; None when that is not positive
+        definite (the step would not descend)."""
+        h = hess + damping * np.eye(2)
+        det = h[0, 0] * h[1, 1] - h[0, 1] * h[1, 0]
+        if not (h[0, 0] > 0 and det > 0):
+            return None
+        return -np.array([h[1, 1] * grad[0] - h[0, 1] * grad[1], h[0, 0] * grad[1] - h[1, 0] * grad[0]]) / det
+
+    def _normal_solver(self, e: np.ndarray):
+        """Solver of the normal equations for ``e = exp(λτ)``: ``solve(u, v) -> (c, a)`` with
+        ``[u; v]`` the right-hand side (centre part ``u``, offset part ``v``; 1-D, or one column
+        per right-hand side), factorised once for all the right-hand sides of one λ."""
+        from scipy.linalg import cho_solve_banded, cholesky_banded
+
+        n_f, n, fidx, tid = self.n_f, self.n, self.fidx, self.tid
         dk = np.maximum(np.bincount(tid, weights=e.real ** 2 + e.imag ** 2, minlength=n), 1e-300)
-        cez = np.conj(e) * z
-        rk = np.bincount(tid, weights=cez.real, minlength=n) + 1j * np.bincount(tid, weights=cez.imag, minlength=n)
         # Schur complement M = diag(count) + smooth²·DᵀD − Σ_k b_k b_kᴴ / d_k (upper band)
         v = e[self.pi] * np.conj(e[self.pj]) / dk[self.pair_k]
-        size = (self.u + 1) * n_f
-        band = -(np.bincount(self.band_pos, weights=v.real, minlength=size)
-                 + 1j * np.bincount(self.band_pos, weights=v.imag, minlength=size)).reshape(self.u + 1, n_f)
+        band = -self._sum_by(self.band_pos, v, (self.u + 1) * n_f).reshape(self.u + 1, n_f)
         band[self.u] += self.cnt
         if self.smooth:
             band += self.sband
-        w = e * (rk / dk)[tid]
-        rhs = self.rf - (np.bincount(fidx, weights=w.real, minlength=n_f)
-                         + 1j * np.bincount(fidx, weights=w.imag, minlength=n_f))
         try:
-            c = solveh_banded(band, rhs, lower=False, check_finite=False)
-            if not np.all(np.isfinite(c)):
-                raise np.linalg.LinAlgError
+            chol = cholesky_banded(band, lower=False, check_finite=False)
         except (np.linalg.LinAlgError, ValueError):
-            c = np.linalg.lstsq(_band_to_dense(band), rhs, rcond=None)[0]
-        bc = np.conj(e) * c[fidx]
-        a = (rk - (np.bincount(tid, weights=bc.real, minlength=n) + 1j * np.bincount(tid, weights=bc.imag,
-                                                                                 minlength=n))) / dk
-        res = z - c[fidx] - e * a[tid]
+            chol = None
+        dense = None
+
+        def solve_centres(rhs):
+            nonlocal dense
+            if chol is not None:
+                c = cho_solve_banded((chol, False), rhs, check_finite=False)
+                if np.all(np.isfinite(c)):
+                    return c
+            if dense is None:
+                dense = _band_to_dense(band)
+            return np.linalg.lstsq(dense, rhs, rcond=None)[0]
+
+        def solve(u, v):
+            col = (slice(None),) + (None,) * (np.ndim(v) - 1)  # e and d_k along the rows of v
+            c = solve_centres(u - self._sum_by(fidx, e[col] * (v / dk[col])[tid], n_f))
+            a = (v - self._sum_by(tid, np.conj(e)[col] * c[fidx], n)) / dk[col]
+            return c, a
+
+        return solve
+
+    def _residuals(self, e, c, a) -> tuple[np.ndarray, float]:
+        """Position residuals and the SSE (with the prior's) of the coefficients ``c``, ``a``."""
+        res = self.z - c[self.fidx] - e * a[self.tid]
         sse = float(np.sum(res.real ** 2 + res.imag ** 2))
         if self.smooth:
             d2 = c[:-2] - 2.0 * c[1:-1] + c[2:]
             sse += self.smooth ** 2 * float(np.sum(d2.real ** 2 + d2.imag ** 2))
-        return np.concatenate([c, a]), sse
+        return res, sse
+
+    def __call__(self, gamma: float, omega: float) -> tuple[np.ndarray, float]:
+        """Coefficients ``[c_0 … c_{F−1}, a_0 … a_{n−1}]`` and the residual sum of squares."""
+        e = np.exp((gamma + 1j * omega) * self.tau)
+        c, a = self._normal_solver(e)(self.rf, self._sum_by(self.tid, np.conj(e) * self.z, self.n))
+        return np.concatenate([c, a]), self._residuals(e, c, a)[1]
+
+    def derivatives(self, gamma: float, omega: float) -> tuple[float, np.ndarray, np.ndarray]:
+        """The profiled SSE S(γ, ω) (least squares over c and a), its gradient and its Hessian.
+
+        With ``F(θ, x)`` the SSE of the coefficients ``x = (c, a)`` at ``θ = (γ, ω)``, and
+        ``x̂(θ)`` its minimiser, ``S = F(θ, x̂)``. The gradient is ``∂F/∂θ`` at ``x̂`` (``∂F/∂x``
+        vanishes there). The Hessian is ``∂²F/∂θ² − ∂²F/∂θ∂x · (∂²F/∂x²)⁻¹ · ∂²F/∂x∂θ``, the
+        last term solving the normal equations for two more right-hand sides
+        ``h_j = Aᴴ·(∂_j A)x̂ − (∂_j A)ᴴ·r`` (``A`` the design, ``r`` the residuals) with the
+        factorisation already made: it costs little more than one call.
+        """
+        tau, tid, fidx, n = self.tau, self.tid, self.fidx, self.n
+        e = np.exp((gamma + 1j * omega) * tau)
+        solve = self._normal_solver(e)
+        c, a = solve(self.rf, self._sum_by(tid, np.conj(e) * self.z, n))
+        r, sse = self._residuals(e, c, a)
+        ea = e * a[tid]
+        dm = tau * ea                          # ∂ model / ∂γ at fixed c, a (∂/∂ω: i·dm)
+        w = np.vdot(r, dm)
+        p = np.vdot(r, tau * dm)               # ⟨r, ∂²model/∂γ²⟩
+        q = float(np.vdot(dm, dm).real)
+        grad = np.array([-2.0 * w.real, 2.0 * w.imag])
+        hess = np.array([[2.0 * q - 2.0 * p.real, 2.0 * p.imag],
+                         [2.0 * p.imag, 2.0 * q + 2.0 * p.real]])
+        tce = tau * np.conj(e)
+        hc = self._sum_by(fidx, dm, self.n_f)
+        h_c = np.column_stack([hc, 1j * hc])
+        h_a = np.column_stack([self._sum_by(tid, tce * (ea - r), n),
+                               1j * self._sum_by(tid, tce * (ea + r), n)])
+        y_c, y_a = solve(h_c, h_a)
+        hess -= 2.0 * (np.conj(h_c).T @ y_c + np.conj(h_a).T @ y_a).real
+        return sse, grad, 0.5 * (hess + hess.T)
+
+    def minimise(self, gamma: float, omega: float, bound: float, span: float,
+                 max_iter: int = 100) -> tuple[float, float, float]:
+        """The (γ, ω) of least profiled SSE reached from ``(gamma, omega)`` inside
+        ``|γ|, |ω| ≤ bound``, and that SSE.
+
+        Newton steps with the exact Hessian (:meth:`derivatives`), damped by the
+        Levenberg–Marquardt rule (``H + μ·s·I``, ``s = |H_γγ| + |H_ωω|`` the Hessian's scale; μ
+        raised until that is positive definite, the step stays in the bounds and lowers the
+        SSE). It stops when the undamped Newton step is predicted to lower the SSE by at most
+        1e-12 of it, or moves ``λ·(t − t_ref)`` by at most 1e-10 over the ``span`` of the record:
+        the SSE itself can no longer tell such steps apart (its rounding is not far below), while
+        the exact gradient still points the way. The steps shrink quadratically, so that last
+        one is taken without evaluating it: it lands on the minimum to within rounding. A start
+        out of bounds is moved onto them.
+        """
+        theta = np.clip([gamma, omega], -bound, bound)
+        sse, grad, hess = self.derivatives(*theta)
+        if not np.isfinite(sse):
+            return float(theta[0]), float(theta[1]), math.inf
+        mu = 0.0
+        for _ in range(max_iter):
+            step = self._newton_step(hess, grad, 0.0)
+            if (step is not None and np.all(np.abs(theta + step) <= bound)
+                    and (-0.5 * float(grad @ step) <= 1e-12 * sse or np.max(np.abs(step)) * span <= 1e-10)):
+                theta = theta + step
+                break
+            scale = abs(hess[0, 0]) + abs(hess[1, 1])
+            while True:
+                step = self._newton_step(hess, grad, mu * scale)
+                if step is not None and np.all(np.abs(theta + step) <= bound):
+                    sse_new, grad_new, hess_new = self.derivatives(*(theta + step))
+                    if sse_new <= sse:
+                        break
+                mu = max(10.0 * mu, 1e-6)
+                if mu > 1e10:
+                    return float(theta[0]), float(theta[1]), sse
+            theta, sse, grad, hess = theta + step, sse_new, grad_new, hess_new
+            mu = 0.1 * mu if mu > 1e-6 else 0.0
+        return float(theta[0]), float(theta[1]), sse
 
 
 def _band_to_dense(band: np.ndarray) -> np.ndarray:
@@ -272,11 +382,13 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     with λ = γ + iω common to all primordia: γ the relative radial growth rate, ω the rotation
     rate, c_f the apex centre in frame f (free per frame, so any drift, and any error left by
     registration, is absorbed). For a given λ the model is linear in the centres and offsets;
-    λ is found by a Nelder–Mead search on the residual, leaving out detections far off the
-    model (a blob cut by the image border, a wrong link) and fitting again (from the previous
-    λ). The motion fixes the centres only up to one common vector b (c_f + exp(λ(t_f − t_ref))·b
-    with a_k − b fits as well); the primordia seen appearing, which are born on a circle of
-    radius R about the centre, fix b (least squares with a soft-L1 loss on both terms).
+    λ is found by damped Newton steps on the residual left (its exact derivatives come from
+    the same linear solve, :meth:`_ProfiledSolver.minimise`; three starts, from slow to fast
+    growth), leaving out detections far off the model (a blob cut by the image border, a wrong
+    link) and fitting again (from the previous λ). The motion fixes the centres only up to one
+    common vector b (c_f + exp(λ(t_f − t_ref))·b with a_k − b fits as well); the primordia seen
+    appearing, which are born on a circle of radius R about the centre, fix b (least squares
+    with a soft-L1 loss on both terms).
 
     The cost grows linearly with the number of frames: the linear sub-problem is solved through
     a banded Schur complement (:class:`_ProfiledSolver`) and the rim fit uses an analytic sparse
@@ -318,7 +430,7 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     >>> round(fit_motion(df, rim=False).gamma_per_h, 4)
     0.05
     """
-    from scipy.optimize import least_squares, minimize
+    from scipy.optimize import least_squares
 
     if tracks.empty:
         return None
@@ -349,27 +461,16 @@ def fit_motion(tracks: pd.DataFrame, min_frames: int = 3, max_rate_per_h: float 
     ids_all = np.array([g["track_id"].iloc[0] for g in groups])
 
     def fit_lambda(solver, start=None):
-        def sse(p):
-            if abs(p[0]) > max_rate_per_h or abs(p[1]) > max_rate_per_h:
-                return 1e300
-            return solver(p[0], p[1])[1]
-
-        opts = {"xatol": 1e-8 / span, "fatol": 1e-12, "maxiter": 2000}
+        # a refit after dropping a few outliers: the optimum moves little, one search from the
+        # previous one finds it (the three starts below cost three times as much)
         if start is not None:
-            # a refit after dropping a few outliers: the optimum moves little, one search from
-            # the previous one finds it (the three starts below cost three times as much)
-            g0, w0 = start
-            sg, sw = max(0.05 * abs(g0), 0.00025), max(0.05 * abs(w0), 0.00025)
-            r = minimize(sse, x0=[g0, w0], method="Nelder-Mead",
-                         options={**opts, "initial_simplex": [[g0, w0], [g0 + sg, w0], [g0, w0 + sw]]})
-            if np.isfinite(r.fun) and r.fun < 1e300:
-                return float(r.x[0]), float(r.x[1])
-        best = None
-        for growth_per_frame in (1.01, 1.04, 1.10):
-            r = minimize(sse, x0=[math.log(growth_per_frame) / dt, 0.0], method="Nelder-Mead", options=opts)
-            if best is None or r.fun < best.fun:
-                best = r
-        return float(best.x[0]), float(best.x[1])
+            gamma, omega, s = solver.minimise(*start, max_rate_per_h, span)
+            if np.isfinite(s):
+                return gamma, omega
+        # else three starts, from slow to fast growth, the least residual kept
+        best = min((solver.minimise(math.log(growth_per_frame) / dt, 0.0, max_rate_per_h, span)
+                    for growth_per_frame in (1.01, 1.04, 1.10)), key=lambda r: r[2])
+        return best[0], best[1]
 
     # the centre smoothness prior, weighted against a typical detection error of 0.1 µm
     smooth = 0.1 / CENTRE_STEP_SD_UM
