@@ -126,16 +126,30 @@ def _input_checksums(path, stop=None) -> dict[str, str]:
 
 
 class _Checksums:
-    """The input's checksums, computed in a thread of its own while the stack is analysed (the
-    file is read once more, from the page cache; hashing releases the interpreter lock), at the
-    lowest priority, so that it does not hold up the analysis."""
+    """The input's checksums, computed while the stack is analysed (the file is read once more,
+    from the page cache).
 
-    def __init__(self, path):
+    Without worker processes, in a thread of this program started at once, at the lowest
+    priority, so that it does not hold up the analysis (hashing releases the interpreter lock).
+    With worker processes (``pool``), by one of them once the frames are measured
+    (:meth:`start`): then the workers have little to do while the tracks are linked here, and
+    a thread at the lowest priority would find no processor time left until the very end.
+    """
+
+    def __init__(self, path, pool=None):
+        self._path, self._pool, self._job = path, pool, None
         self._stop = threading.Event()
         self._value: dict[str, str] = {}
         self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._run, args=(path,), name="apextrack-checksum", daemon=True)
-        self._thread.start()
+        self._thread = None
+        if pool is None:
+            self._thread = threading.Thread(target=self._run, args=(path,), name="apextrack-checksum", daemon=True)
+            self._thread.start()
+
+    def start(self) -> None:
+        """Hand the work to a worker process (when there are any; at most once)."""
+        if self._pool is not None and self._job is None:
+            self._job = self._pool.call(_input_checksums, self._path)
 
     def _run(self, path) -> None:
         if sys.platform.startswith("linux"):
@@ -151,6 +165,12 @@ class _Checksums:
             self._error = exc
 
     def result(self) -> dict[str, str]:
+        """The checksums (waited for; asked again, the same)."""
+        if self._pool is not None:
+            if self._job is not False:  # False: the worker's answer is in hand
+                self.start()
+                self._value, self._job = self._job.result(), False
+            return self._value
         self._thread.join()
         if self._error is not None:
             raise self._error
@@ -158,6 +178,8 @@ class _Checksums:
 
     def cancel(self) -> None:
         self._stop.set()
+        if self._job:
+            self._job.cancel()
 
 
 @dataclass
@@ -286,7 +308,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         measured_in = f"{pool.size} processes" if pool is not None else f"{_n_threads(s.threads)} thread(s)"
         measures = measure_frames(stack, s, ctx, done=done, pool=pool)
     try:
-        checksums = _Checksums(stack.path)
+        checksums = _Checksums(stack.path, pool)
         staging = StagedFolder(out) if out is not None else None
     except BaseException:
         if pool is not None:
@@ -306,8 +328,10 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         finally:
             if writer is not None:
                 writer.close()
+        # while the tracks are linked here, a worker computes the checksum and the workers load
+        # the plotting library
+        checksums.start()
         if pool is not None and staging is not None and (s.report if write_report is None else write_report):
-            # the workers load the plotting library while the tracks are linked here
             pool.load_report()
         lap("image", t_image)
         blank = list(centres.attrs.get("blank_frames", []))
