@@ -91,19 +91,6 @@ def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
             conn.send((job, False, RuntimeError(f"a worker could not send its result back: {exc}")))
 
 
-def _load_report() -> None:
-    """Load the report's plotting library in a worker while the analysis links the tracks, and
-    draw one small figure with text (the fonts and the renderer's first-use work)."""
-    import matplotlib.backends.backend_svg  # noqa: F401
-
-    from . import report
-
-    fig = report._figure((1.0, 1.0))
-    ax = fig.add_subplot()
-    ax.set_title("0")
-    report.render_figure(fig, ("png",), 50)
-
-
 def _measure_in_worker(t: int, ctx):
     from .imaging import _measure
 
@@ -203,8 +190,10 @@ class FramePool:
 
     def load_report(self) -> None:
         """Have the workers import the plotting library now (returns at once)."""
+        from .report import warm_up
+
         for _ in range(self.size):
-            self.call(_load_report)
+            self.call(warm_up)
 
     def _dispatch(self) -> None:
         """Hand queued jobs to the least busy workers, up to :data:`_PER_WORKER` each (the

@@ -203,6 +203,18 @@ def _outline():
     return [patheffects.withStroke(linewidth=2.2, foreground="black")]
 
 
+def warm_up() -> None:
+    """Load the plotting library and draw one small figure with text (the fonts and the
+    renderer's first-use work), so that the report's figures are drawn at full speed. Worker
+    processes call it while they would otherwise wait."""
+    import matplotlib.backends.backend_svg  # noqa: F401
+
+    fig = _figure((1.0, 1.0))
+    ax = fig.add_subplot()
+    ax.set_title("0")
+    render_figure(fig, ("png",), 50)
+
+
 def _figure(size=(6.4, 4.8), layout: str | None = None):
     """A figure on the Agg canvas. Stack figures are placed by :func:`_fixed_layout` (no layout
     engine: an engine draws the figure once more, without output, to measure it); the
@@ -1072,16 +1084,16 @@ def _errorbar_figure(df: pd.DataFrame, key: str, lo: str, hi: str, ylabel: str, 
     return fig
 
 
-def make_experiment_figures(experiment: pd.DataFrame, expected_angle_deg: float | None = None) -> dict[str, Any]:
-    """The figures of :data:`EXPERIMENT_FIGURES` comparing the stacks of ``experiment``."""
-    df = experiment.reset_index(drop=True)
-    figs = {
-        "experiment_divergence": _errorbar_figure(df, "divergence_mean_deg", "divergence_ci_low_deg",
-                                                  "divergence_ci_high_deg", "mean divergence angle (°)",
-                                                  expected_angle_deg),
-        "experiment_plastochron": _errorbar_figure(df, "plastochron_h", "plastochron_ci_low_h",
-                                                   "plastochron_ci_high_h", "plastochron (h)"),
-    }
+def _fig_experiment_divergence(df: pd.DataFrame, expected_angle_deg: float | None):
+    return _errorbar_figure(df, "divergence_mean_deg", "divergence_ci_low_deg", "divergence_ci_high_deg",
+                            "mean divergence angle (°)", expected_angle_deg)
+
+
+def _fig_experiment_plastochron(df: pd.DataFrame, expected_angle_deg: float | None):
+    return _errorbar_figure(df, "plastochron_h", "plastochron_ci_low_h", "plastochron_ci_high_h", "plastochron (h)")
+
+
+def _fig_experiment_ratio(df: pd.DataFrame, expected_angle_deg: float | None):
     fig = _errorbar_figure(df, "plastochron_ratio", "plastochron_ratio_ci_low", "plastochron_ratio_ci_high",
                            "plastochron ratio")
     ax2 = fig.axes[0].twinx()
@@ -1091,12 +1103,40 @@ def make_experiment_figures(experiment: pd.DataFrame, expected_angle_deg: float 
         ax2.set_ylabel("primordia (bars)")
         fig.axes[0].set_zorder(ax2.get_zorder() + 1)
         fig.axes[0].patch.set_visible(False)
-    figs["experiment_ratio"] = fig
-    return figs
+    return fig
+
+
+_EXPERIMENT_FIGURE_FUNCS = {"experiment_divergence": _fig_experiment_divergence,
+                            "experiment_plastochron": _fig_experiment_plastochron,
+                            "experiment_ratio": _fig_experiment_ratio}
+
+
+def make_experiment_figures(experiment: pd.DataFrame, expected_angle_deg: float | None = None) -> dict[str, Any]:
+    """The figures of :data:`EXPERIMENT_FIGURES` comparing the stacks of ``experiment``."""
+    df = experiment.reset_index(drop=True)
+    return {name: func(df, expected_angle_deg) for name, func in _EXPERIMENT_FIGURE_FUNCS.items()}
+
+
+def _analysed(experiment: pd.DataFrame) -> pd.DataFrame:
+    """The stacks of an experiment table that were analysed (``status`` ok)."""
+    return experiment[experiment["status"] == "ok"] if "status" in experiment else experiment
+
+
+def draw_experiment_figure(experiment: pd.DataFrame, name: str, expected_angle_deg: float | None = None,
+                           formats: Iterable[str] = ("png", "svg")) -> dict[str, bytes]:
+    """One figure of the experiment report (a name of :data:`EXPERIMENT_FIGURES`) drawn for the
+    analysed stacks of ``experiment``: its file contents by format. The figures can thus be
+    drawn side by side (e.g. by the workers of a batch) and handed to
+    :func:`write_experiment_report`."""
+    fig = _EXPERIMENT_FIGURE_FUNCS[name](_analysed(experiment).reset_index(drop=True), expected_angle_deg)
+    files = render_figure(fig, [f.lower() for f in formats])
+    fig.clear()
+    return files
 
 
 def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, title: str = "apextrack experiment",
-                            formats: Iterable[str] = ("png", "svg"), expected_angle_deg: float | None = None) -> Path:
+                            formats: Iterable[str] = ("png", "svg"), expected_angle_deg: float | None = None,
+                            drawn: dict[str, dict[str, bytes]] | None = None) -> Path:
     """Write ``experiment_report.html`` comparing the stacks of a batch.
 
     Parameters
@@ -1106,6 +1146,9 @@ def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, tit
         ``results``, summary figures).
     folder : str or Path
         The batch output folder; figures go to ``figures/``.
+    drawn : dict, optional
+        The figures already drawn (:func:`draw_experiment_figure`, by name, with every format
+        of ``formats``); the others are drawn here.
 
     Returns
     -------
@@ -1114,15 +1157,14 @@ def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, tit
     """
     folder = Path(folder)
     formats = [f.lower() for f in formats]
-    ok = experiment[experiment["status"] == "ok"] if "status" in experiment else experiment
+    ok = _analysed(experiment)
     pngs = {}
     if len(ok):
-        for name, fig in make_experiment_figures(ok, expected_angle_deg).items():
-            files = render_figure(fig, formats)
+        for name in EXPERIMENT_FIGURES:
+            files = (drawn or {}).get(name) or draw_experiment_figure(experiment, name, expected_angle_deg, formats)
             pngs[name] = files["png"]
             for fmt in formats:
                 atomic_write_bytes(folder / "figures" / f"{name}.{fmt}", files[fmt])
-            fig.clear()
     n_ok, n = int(len(ok)), int(len(experiment))
     parts = ["<!DOCTYPE html>", "<html lang=\"en\"><head><meta charset=\"utf-8\">",
              f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
