@@ -120,19 +120,21 @@ def _run_child(*args) -> dict:
     return json.loads(r.stdout.strip().splitlines()[-1])
 
 
-def _match(det_xy: np.ndarray, truth_xy: np.ndarray, max_um: float) -> tuple[int, int, int]:
+def _match(det_xy: np.ndarray, truth_xy: np.ndarray, max_um: float) -> tuple[int, int, int, np.ndarray]:
     """True positives, false positives, false negatives by optimal one-to-one matching
-    (scipy's Hungarian assignment) within ``max_um``."""
+    (scipy's Hungarian assignment) within ``max_um``, the indices of the detections left
+    unmatched and the distances of the matched pairs."""
     from scipy.optimize import linear_sum_assignment
     from scipy.spatial.distance import cdist
 
     if len(det_xy) == 0 or len(truth_xy) == 0:
-        return 0, len(det_xy), len(truth_xy)
+        return 0, len(det_xy), len(truth_xy), np.arange(len(det_xy)), np.zeros(0)
     d = cdist(det_xy, truth_xy)
     cost = np.where(d <= max_um, d, 1e6)
     r, c = linear_sum_assignment(cost)
-    tp = int(np.sum(d[r, c] <= max_um))
-    return tp, len(det_xy) - tp, len(truth_xy) - tp
+    hit = d[r, c] <= max_um
+    tp = int(np.sum(hit))
+    return tp, len(det_xy) - tp, len(truth_xy) - tp, np.setdiff1d(np.arange(len(det_xy)), r[hit]), d[r, c][hit]
 
 
 def detection_benchmark(path: Path) -> dict:
@@ -147,55 +149,79 @@ def detection_benchmark(path: Path) -> dict:
     s = Settings()
     st = read_stack(path)
     sig = scales_px(s.primordium_diameter_min_um, s.primordium_diameter_max_um, PIXEL_UM, s.n_scales)
-    truth = pd.read_csv(str(path).replace(".tif", "_truth.csv"))
-    truth = truth[truth["visible"].astype(str).str.lower() == "true"]
+    everything = pd.read_csv(str(path).replace(".tif", "_truth.csv"))
+    seen = everything["visible"].astype(str).str.lower() == "true"
+    # the generator counts a primordium visible when its centre lies inside the imaged volume;
+    # one whose centre has just left it (below the first slice, at most a radius away) still
+    # shows in the top view. A detection there is neither a hit nor a false positive: it is
+    # left out of the count, for both detectors (the usual treatment of objects of ambiguous
+    # visibility in detection benchmarks, e.g. the distractors of MOT16, Milan et al. 2016 —
+    # recalled from memory). The strict count is given too.
+    truth, ambiguous = everything[seen], everything[~seen]
     views = [st.frame(t).max(axis=0) for t in range(st.n_frames)]
     max_um = 4.0  # a match lies within half the smallest primordium diameter at birth (8 µm)
 
-    def score(found):
-        tp = fp = fn = 0
+    def score(found, strict: bool = False):
+        tp = fp = fn = ignored = 0
+        dist = []
         for t, xy in enumerate(found):
             tt = truth[truth["frame"] == t][["x_um", "y_um"]].to_numpy(float)
-            a, b, c = _match(xy, tt, max_um)
+            amb = ambiguous[ambiguous["frame"] == t][["x_um", "y_um"]].to_numpy(float)
+            a, b, c, unmatched, d = _match(xy, tt, max_um)
+            dist.append(d)
+            if not strict and len(unmatched) and len(amb):
+                from scipy.spatial.distance import cdist
+
+                near = cdist(xy[unmatched], amb).min(axis=1) <= max_um
+                b, ignored = b - int(near.sum()), ignored + int(near.sum())
             tp, fp, fn = tp + a, fp + b, fn + c
         prec = tp / max(tp + fp, 1)
         rec = tp / max(tp + fn, 1)
-        return {"tp": tp, "fp": fp, "fn": fn, "precision": prec, "recall": rec,
-                "f1": 2 * prec * rec / max(prec + rec, 1e-12)}
+        d = np.concatenate(dist)
+        return {"tp": tp, "fp": fp, "fn": fn, "ignored": ignored, "precision": prec, "recall": rec,
+                "f1": 2 * prec * rec / max(prec + rec, 1e-12),
+                "rmse_um": float(np.sqrt(np.mean(d ** 2))) if d.size else math.nan}
 
-    # both detectors are timed five times on the same views and the fastest run counts (this
-    # machine's noise is large against our tenth of a second)
-    repeats = 5
-    detect_blobs(views[0], sig, min_snr=s.min_snr)  # warm-up (FFT plans, transfer functions)
-    t_ours = math.inf
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        ours = []
-        for v in views:
-            df = detect_blobs(v, sig, min_snr=s.min_snr)
-            ours.append(df[["x_px", "y_px"]].to_numpy(float) * PIXEL_UM)
-        t_ours = min(t_ours, time.perf_counter() - t0)
+    def run_ours():
+        return [detect_blobs(v, sig, min_snr=s.min_snr)[["x_px", "y_px"]].to_numpy(float) * PIXEL_UM for v in views]
+
     # naive blob_log: same σ range and count, log spacing, image scaled to [0, 1]; its threshold
     # is tuned on these very frames (best F1 over a grid) to give it its best accuracy
     normed = [(v - v.min()) / max(float(v.max() - v.min()), 1e-9) for v in views]
-    best = None
+
+    def run_blob_log(thr):
+        return [blob_log(v, min_sigma=sig[0], max_sigma=sig[-1], num_sigma=len(sig), threshold=thr,
+                         log_scale=True)[:, [1, 0]] * PIXEL_UM for v in normed]
+
+    best = best_strict = None
     for thr in (0.01, 0.02, 0.05, 0.1, 0.2):
-        t0 = time.perf_counter()
-        found = [blob_log(v, min_sigma=sig[0], max_sigma=sig[-1], num_sigma=len(sig), threshold=thr,
-                          log_scale=True)[:, [1, 0]] * PIXEL_UM for v in normed]
-        dt = time.perf_counter() - t0
-        sc = score(found)
+        found = run_blob_log(thr)
+        sc, strict = score(found), score(found, strict=True)
         if best is None or sc["f1"] > best["score"]["f1"]:
-            best = {"threshold": thr, "time_s": dt, "score": sc}
-    for _ in range(repeats - 1):  # the chosen threshold timed again: the fastest of five
+            best = {"threshold": thr, "score": sc}
+        if best_strict is None or strict["f1"] > best_strict["f1"]:  # its own best threshold for this count
+            best_strict = {**strict, "threshold": thr}
+    ours = run_ours()  # also the warm-up (FFT plans, transfer functions)
+    # timed in five rounds, each the fastest of three runs of ours then one of blob_log (ten
+    # times longer): this machine's speed drifts by tens of per cent from minute to minute, and
+    # a ratio taken within a round sees both detectors at the same speed; the median counts
+    rounds = []
+    for _ in range(5):
+        t_ours = math.inf
+        for _ in range(3):
+            t0 = time.perf_counter()
+            run_ours()
+            t_ours = min(t_ours, time.perf_counter() - t0)
         t0 = time.perf_counter()
-        for v in normed:
-            blob_log(v, min_sigma=sig[0], max_sigma=sig[-1], num_sigma=len(sig), threshold=best["threshold"],
-                     log_scale=True)
-        best["time_s"] = min(best["time_s"], time.perf_counter() - t0)
+        run_blob_log(best["threshold"])
+        rounds.append((t_ours, time.perf_counter() - t0))
+    ratios = [b / a for a, b in rounds]
+    i_med = int(np.argsort(ratios)[len(ratios) // 2])
+    t_ours, best["time_s"] = rounds[i_med]
     return {"frames": len(views), "sigmas_px": [float(x) for x in sig], "apextrack_s": t_ours,
-            "apextrack": score(ours), "blob_log_s": best["time_s"], "blob_log_threshold": best["threshold"],
-            "blob_log": best["score"], "speedup": best["time_s"] / t_ours}
+            "apextrack": score(ours), "apextrack_strict": score(ours, strict=True), "blob_log_s": best["time_s"],
+            "blob_log_threshold": best["threshold"], "blob_log": best["score"], "blob_log_strict": best_strict,
+            "speedup": float(np.median(ratios)), "speedup_per_round": ratios}
 
 
 def _read_through(path: Path) -> None:
@@ -313,15 +339,19 @@ def main() -> None:
     slope, icpt, r2 = linear_fit(Ts[core], walls[core])
     slope_all, icpt_all, r2_all = linear_fit(Ts, walls) if (~core).any() else (slope, icpt, r2)
     det = detection_benchmark(stack_path(10))
-    print(f"detection on {det['frames']} top views: apextrack {det['apextrack_s']:.2f} s (F1 {det['apextrack']['f1']:.3f}), "
-          f"blob_log {det['blob_log_s']:.2f} s (F1 {det['blob_log']['f1']:.3f}, threshold {det['blob_log_threshold']}), "
-          f"speed-up {det['speedup']:.1f}×", flush=True)
+    print(f"detection on {det['frames']} top views: apextrack {det['apextrack_s']:.2f} s (F1 {det['apextrack']['f1']:.3f}; "
+          f"{det['apextrack_strict']['f1']:.3f} counting detections of primordia just out of the volume as false), "
+          f"blob_log {det['blob_log_s']:.2f} s (F1 {det['blob_log']['f1']:.3f}; {det['blob_log_strict']['f1']:.3f}; "
+          f"threshold {det['blob_log_threshold']}), localisation RMSE {det['apextrack']['rmse_um']:.3f} vs "
+          f"{det['blob_log']['rmse_um']:.3f} µm, speed-up {det['speedup']:.1f}×", flush=True)
     batch = {} if args.skip_batch else batch_benchmark(args.batch)
     summary = {
         "1_analyse_over_read_project": {str(r["T"]): r["ratio"] for r in rows},
         "1_analyse_over_float32_read_project": {str(r["T"]): r["ratio_to_float32_read"] for r in rows},
         "2_detection_speedup_vs_blob_log": det["speedup"],
         "2_f1_apextrack_vs_blob_log": [det["apextrack"]["f1"], det["blob_log"]["f1"]],
+        "2_f1_strict_apextrack_vs_blob_log": [det["apextrack_strict"]["f1"], det["blob_log_strict"]["f1"]],
+        "2_rmse_um_apextrack_vs_blob_log": [det["apextrack"]["rmse_um"], det["blob_log"]["rmse_um"]],
         "3_peak_rss_max_over_min": float(rss[core].max() / rss[core].min()),
         "3_peak_rss_with_workers_max_over_min": float(rss_total[core].max() / rss_total[core].min()),
         "3_peak_rss_max_over_min_all_T": float(rss.max() / rss.min()),
