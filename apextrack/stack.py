@@ -11,6 +11,7 @@ user; a guessed value is reported in :attr:`Stack.warnings`.
 from __future__ import annotations
 
 import math
+import os
 import re
 import threading
 import warnings as _warnings
@@ -138,8 +139,12 @@ class Stack:
             index[self.axes.index("T")] = t
             if isinstance(self.data, np.memmap):
                 view = self.data[tuple(index)]
-                arr = np.array(view)  # a copy, so that the mapped pages can go
-                _drop_mapped_pages(self.data, view)
+                arr = _read_mapped(self.data, view)
+                if arr is None:
+                    arr = np.array(view)  # a copy, so that the mapped pages can go
+                    _drop_mapped_pages(self.data, view)
+                if not arr.dtype.isnative:  # a big-endian file: the values in this machine's order
+                    arr = arr.astype(arr.dtype.newbyteorder("="))
                 return arr
             if isinstance(self.data, np.ndarray):
                 return np.asarray(self.data[tuple(index)])
@@ -374,10 +379,11 @@ def _length_um(value, unit: str | None) -> float | None:
 
 
 def _open_lazy(tif, series, path: Path):
-    """The series as a memory map when contiguous and uncompressed, else as a zarr array."""
+    """The series as a memory map when contiguous and uncompressed, else as a zarr array. The
+    map has the file's byte order (ImageJ, for one, writes big-endian files)."""
     try:
         if series.dataoffset is not None:
-            mm = np.memmap(path, dtype=series.dtype, mode="r", offset=series.dataoffset,
+            mm = np.memmap(path, dtype=series.dtype.newbyteorder(tif.byteorder), mode="r", offset=series.dataoffset,
                            shape=series.shape, order="C")
             return mm, None
     except (ValueError, OSError):
@@ -485,6 +491,39 @@ def _read_tiff(path: Path, time_axis: str | None) -> Stack:
                   interval_h=np.nan if interval is None else interval, channel_names=list(names),
                   path=path, warnings=notes, source_format=fmt, _close=tif_close)
     return stack
+
+
+def _read_mapped(mm: np.memmap, part: np.ndarray) -> np.ndarray | None:
+    """The values of ``part``, a C-contiguous view into the read-only memory map ``mm``, read
+    from the file by positional reads into a new array; None where that cannot be done (then
+    the caller copies out of the map). Reading a frame from the file costs about half of
+    copying it out of the map, whose pages must be faulted in and released again."""
+    import mmap
+
+    m, name = getattr(mm, "_mmap", None), getattr(mm, "filename", None)
+    if m is None or name is None or mm.mode != "r" or not hasattr(os, "preadv") or not part.flags.c_contiguous:
+        return None
+    try:
+        out = np.empty(part.shape, part.dtype)
+        if out.nbytes == 0:
+            return out
+        # the map starts at the file offset rounded down to the allocation granularity
+        base = np.frombuffer(m, np.uint8).__array_interface__["data"][0]
+        start = mm.offset - mm.offset % mmap.ALLOCATIONGRANULARITY + (part.__array_interface__["data"][0] - base)
+        buf = memoryview(out).cast("B")
+        fd = os.open(name, os.O_RDONLY)
+        try:
+            done = 0
+            while done < len(buf):
+                n = os.preadv(fd, [buf[done:]], start + done)
+                if n <= 0:
+                    return None
+                done += n
+        finally:
+            os.close(fd)
+        return out
+    except (OSError, ValueError, TypeError):
+        return None
 
 
 def _drop_mapped_pages(mm: np.memmap, part: np.ndarray | None = None) -> None:

@@ -166,3 +166,29 @@ def test_nan_frame_is_refused():
     with pytest.raises(InputError, match="NaN"):
         s.frame(1)
     assert math.isnan(s.pixel_size_um[2])
+
+
+@pytest.mark.parametrize("byteorder", ["<", ">"])
+def test_frames_read_from_a_mapped_file_equal_the_reference_reader(tmp_path, byteorder):
+    """Frames of a memory-mapped stack are read from the file by positional reads (not copied
+    out of the map): the values must equal tifffile's (the reference reader), channel by
+    channel, in either byte order; a frame that is not contiguous in the file falls back to
+    copying out of the map."""
+    from apextrack.stack import _read_mapped
+
+    rng = np.random.default_rng(7)
+    data = rng.integers(0, 65535, size=(3, 4, 2, 16, 24), dtype=np.uint16)  # T Z C Y X
+    path = tmp_path / "hyper.tif"
+    tifffile.imwrite(path, data, imagej=True, byteorder=byteorder, metadata={"axes": "TZCYX"})
+    ref = tifffile.imread(path)
+    st = read_stack(path)
+    assert isinstance(st.data, np.memmap)
+    for t in range(3):
+        for c in range(2):
+            np.testing.assert_array_equal(st.frame(t, c, native=True), ref[t, :, c])
+    # a view that is not contiguous: no positional read, the caller copies from the map
+    assert _read_mapped(st.data, st.data[:, 0]) is None
+    # the positional read itself, not the fallback, gave the frames above
+    whole = _read_mapped(st.data, st.data[1])
+    assert whole is not None and whole.dtype == st.data.dtype
+    np.testing.assert_array_equal(whole, np.asarray(st.data[1]))
