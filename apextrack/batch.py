@@ -363,8 +363,10 @@ def make_client(scheduler: str | None = None, n_workers: int | None = None, *, d
     # library's growing threshold for serving large blocks from mapped memory, so that every
     # frame-sized array is mapped afresh and its pages zero-filled: the analysis ran ~1.5× slower
     # (a T = 10 stack: 0.9 s instead of 0.5 s for its frames). The workers of this cluster start
-    # without it (setting a key to None removes it)
-    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+    # without it (setting a key to None removes it), and without dask's sampling profiler (a
+    # thread looking at every thread's stack every 10 ms, for the dashboard's profile page)
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+                          "distributed.worker.profile.enabled": False}):
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=dashboard_address)
     client = Client(cluster)
     try:

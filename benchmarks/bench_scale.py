@@ -11,7 +11,7 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
 2. apextrack's detection ÷ the naive ``skimage.feature.blob_log`` over the same scales (target: ≥ 20×
    faster), with the accuracy of both against the ground truth;
 3. peak RSS against T (target: flat within 10 %) and wall time against T (target: linear, R² > 0.99);
-4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up), in three interleaved
+4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up), in five interleaved
    rounds (the median speed-up counts).
 
 Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
@@ -232,7 +232,7 @@ def _read_through(path: Path) -> None:
             pass
 
 
-def batch_benchmark(n_stacks: int, workers_list=(1, 2), rounds: int = 3) -> dict:
+def batch_benchmark(n_stacks: int, workers_list=(1, 2), rounds: int = 5) -> dict:
     """``run_batch`` on ``n_stacks`` stacks with each worker count of ``workers_list``, in
     ``rounds`` interleaved rounds (1, 2, 1, 2, ...: this machine's speed drifts by tens of per
     cent from minute to minute, and a slow spell then falls on both). Per worker count: every
