@@ -12,7 +12,8 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
    faster), with the accuracy of both against the ground truth;
 3. peak RSS against T (target: flat within 10 %) and wall time against T (target: linear, R² > 0.99);
 4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up), in five interleaved
-   rounds (the median speed-up counts).
+   rounds (the median speed-up counts), beside what two processes at once get from this machine
+   at all (the same plain work alone and two at a time).
 
 Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
 measures frames in worker processes, the largest worker's peak is recorded too. Results are printed
@@ -224,6 +225,43 @@ def detection_benchmark(path: Path) -> dict:
             "speedup": float(np.median(ratios)), "speedup_per_round": ratios}
 
 
+def _spin(kind: str) -> float:
+    """A fixed piece of work, timed: ``python`` (an interpreter loop) or ``numpy`` (max
+    projections and additions over a 40×512×512 float32 volume, memory-bound)."""
+    if kind == "python":
+        t0 = time.perf_counter()
+        acc = 0
+        for i in range(6_000_000):
+            acc += i * i
+        return time.perf_counter() - t0
+    vol = np.random.default_rng(0).random((40, 512, 512)).astype(np.float32)
+    t0 = time.perf_counter()
+    for _ in range(30):
+        vol.max(axis=0)
+        np.add(vol, 1, out=vol)
+    return time.perf_counter() - t0
+
+
+def machine_ceiling(rounds: int = 3) -> dict:
+    """What two processes at once get from this machine's two cores: the same work timed alone
+    and in two forked processes at the same time; ``2 × alone ÷ together`` is the speed-up any
+    two-worker batch can reach at most (2.0 on two independent cores; less where the cores
+    share their execution units or memory bandwidth)."""
+    import multiprocessing as mp
+
+    out = {}
+    pool = mp.get_context("fork").Pool(2)
+    try:
+        for kind in ("python", "numpy"):
+            alone = min(_spin(kind) for _ in range(rounds))
+            together = min(max(pool.map(_spin, [kind, kind])) for _ in range(rounds))
+            out[kind] = {"alone_s": alone, "two_at_once_s": together, "speedup": 2 * alone / together}
+    finally:
+        pool.close()
+        pool.join()
+    return out
+
+
 def _read_through(path: Path) -> None:
     """Read a file once, so that its pages are in the page cache."""
     with open(path, "rb", buffering=0) as fh:
@@ -344,6 +382,9 @@ def main() -> None:
           f"blob_log {det['blob_log_s']:.2f} s (F1 {det['blob_log']['f1']:.3f}; {det['blob_log_strict']['f1']:.3f}; "
           f"threshold {det['blob_log_threshold']}), localisation RMSE {det['apextrack']['rmse_um']:.3f} vs "
           f"{det['blob_log']['rmse_um']:.3f} µm, speed-up {det['speedup']:.1f}×", flush=True)
+    ceiling = machine_ceiling()
+    print("two processes at once on this machine: " + ", ".join(
+        f"{k} {v['speedup']:.2f}×" for k, v in ceiling.items()) + " the speed of one", flush=True)
     batch = {} if args.skip_batch else batch_benchmark(args.batch)
     summary = {
         "1_analyse_over_read_project": {str(r["T"]): r["ratio"] for r in rows},
@@ -360,6 +401,7 @@ def main() -> None:
         # the median of the rounds' speed-ups (each round runs 1 then 2 workers)
         "4_batch_speedup_2_over_1_worker": float(np.median(batch["speedup_per_round"])) if batch else None,
         "4_batch_speedup_per_round": batch.get("speedup_per_round"),
+        "4_machine_two_process_ceiling": {k: v["speedup"] for k, v in ceiling.items()},
         "4_batch_speedup_with_cluster_start": float(np.median(batch["speedup_with_start_per_round"]))
         if batch else None,
     }
@@ -367,7 +409,7 @@ def main() -> None:
     for k, v in summary.items():
         print(f"{k:40s} {v}")
     result = {"machine": machine, "load_avg_at_end": os.getloadavg(), "scaling": rows, "detection": det,
-              "batch": batch, "summary": summary, "date": time.strftime("%Y-%m-%d %H:%M")}
+              "batch": batch, "machine_ceiling": ceiling, "summary": summary, "date": time.strftime("%Y-%m-%d %H:%M")}
     (HERE / "results_scale.json").write_text(json.dumps(result, indent=2, default=float) + "\n", encoding="utf-8")
 
 
