@@ -303,7 +303,12 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
         # the first frame with signal is measured here, then the worker processes are forked
         # (while this program has no other thread): they start with what that frame loaded and
         # warmed up (libraries, caches) instead of each loading it again
-        ctx, done = stage_context(stack, s)
+        try:
+            ctx, done = stage_context(stack, s)
+        except BaseException:
+            if not isinstance(source, Stack):
+                stack.close()
+            raise
         pool = _frame_pool(source, stack, s)
         measured_in = f"{pool.size} processes" if pool is not None else f"{_n_threads(s.threads)} thread(s)"
         measures = measure_frames(stack, s, ctx, done=done, pool=pool)
