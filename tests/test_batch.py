@@ -18,14 +18,30 @@ SETTINGS = {"bootstrap_n": 100, "seed": 5}
 
 @pytest.fixture(scope="module")
 def client():
-    """One local cluster of 2 worker processes for the whole module (starting one is slow)."""
-    from distributed import Client, LocalCluster
+    """One local cluster of 2 worker processes for the whole module (starting one is slow),
+    started as ``apextrack batch`` starts its own."""
+    from apextrack.batch import make_client
 
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0")
-    c = Client(cluster)
+    c, cluster = make_client(n_workers=2)
     yield c
     c.close()
     cluster.close()
+
+
+def test_local_cluster_workers_start_warm_and_without_the_trim_setting(client):
+    """The workers of the cluster the batch starts: without dask's MALLOC_TRIM_THRESHOLD_ (it
+    turns off the C library's growing threshold for mapped blocks, and every frame-sized array
+    is then zero-filled afresh), without the sampling profiler, and with the analysis's and the
+    plotting library's modules loaded."""
+    def state():
+        import sys
+
+        import dask
+
+        return (os.environ.get("MALLOC_TRIM_THRESHOLD_"), dask.config.get("distributed.worker.profile.enabled"),
+                "matplotlib.figure" in sys.modules, "scipy.optimize" in sys.modules)
+
+    assert set(client.run(state).values()) == {(None, False, True, True)}
 
 
 @pytest.fixture(scope="module")
