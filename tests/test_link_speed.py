@@ -23,7 +23,8 @@ from apextrack.apex import centre_from_tracks
 from apextrack.link import _ProfiledSolver, fit_motion
 
 GOLDEN_RAD = math.pi * (3.0 - math.sqrt(5.0))
-#: relative radial growth rate of the scenes (plastochron ratio 1.12 per 6 h, Richards 1951)
+#: relative radial growth rate of the scenes: a plastochron ratio (as Richards 1951 defines it) of
+#: 1.12 per 6 h plastochron, a value of our own scenario
 GAMMA = math.log(1.12) / 6.0
 
 
