@@ -137,32 +137,51 @@ def _format_float(x: float) -> str:
     return repr(float(x))
 
 
+def _cell_texts(s: pd.Series) -> list[str]:
+    """The CSV text of every cell of a column: ``true``/``false``, floats exactly (``repr``,
+    empty for NaN), integers, and anything else as ``str`` (empty for a missing value). Columns
+    of numpy's plain types are converted as a whole (through Python numbers: a pandas map per
+    cell cost most of the time of writing the tables)."""
+    dt = s.dtype
+    if isinstance(dt, np.dtype) and dt.kind in "biuf":
+        values = s.to_numpy().tolist()
+        if dt.kind == "b":
+            return ["true" if v else "false" for v in values]
+        if dt.kind == "f":
+            return [_format_float(v) for v in values]
+        return [str(v) for v in values]
+    if pd.api.types.is_bool_dtype(s):
+        return s.map(lambda v: "true" if bool(v) else "false").tolist()
+    if pd.api.types.is_float_dtype(s):
+        return s.map(_format_float).tolist()
+    if pd.api.types.is_integer_dtype(s):
+        return s.map(lambda v: "" if pd.isna(v) else str(int(v))).tolist()
+    return s.map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v)).tolist()
+
+
 def to_csv_text(df: pd.DataFrame) -> str:
     """Render a DataFrame as CSV text with exact, deterministic float formatting."""
-    out = pd.DataFrame(index=df.index)
-    for name in df.columns:
-        s = df[name]
-        if pd.api.types.is_bool_dtype(s):
-            out[name] = s.map(lambda v: "true" if bool(v) else "false")
-        elif pd.api.types.is_float_dtype(s):
-            out[name] = s.map(_format_float)
-        elif pd.api.types.is_integer_dtype(s):
-            out[name] = s.map(lambda v: "" if pd.isna(v) else str(int(v)))
-        else:
-            out[name] = s.map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v))
-    if any("\r" in str(v) for col in out.columns for v in out[col]):
-        # the csv module quotes only the characters of its line terminator: write rows with
-        # "\r\n" so that a carriage return inside a text cell is quoted, then join with "\n"
-        import csv
-        import io
+    import csv
+    import io
 
+    if len(df.columns) == 0:
+        return pd.DataFrame(index=df.index).to_csv(index=False, lineterminator="\n")
+    columns = [_cell_texts(df.iloc[:, i]) for i in range(len(df.columns))]
+    # the csv module quotes only the characters of its line terminator: with a carriage return
+    # inside a text cell, rows are written with "\r\n" (so that the cell is quoted), then joined
+    # with "\n"
+    has_cr = any("\r" in v for col in columns for v in col) or any("\r" in str(c) for c in df.columns)
+    rows = [list(map(str, df.columns))] + [list(r) for r in zip(*columns)]
+    if has_cr:
         lines = []
-        for row in [list(map(str, out.columns))] + out.astype(object).values.tolist():
+        for row in rows:
             buf = io.StringIO()
             csv.writer(buf, lineterminator="\r\n").writerow(row)
             lines.append(buf.getvalue()[:-2])
         return "\n".join(lines) + "\n"
-    return out.to_csv(index=False, lineterminator="\n")
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerows(rows)
+    return buf.getvalue()
 
 
 def _umask_mode() -> int:

@@ -236,3 +236,34 @@ def test_read_only_parent_is_refused_before_any_work(good, tmp_path, capsys):
         ro.chmod(0o755)
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2 and len(err) == 1 and "not writable" in err[0] and str(ro) in err[0]
+
+
+def test_table_text_reads_back_cell_for_cell_with_the_csv_module():
+    """The tables' CSV text, checked by Python's csv module (the reference reader) and by
+    pandas: text with commas, quotes, line breaks and a carriage return comes back cell for
+    cell; floats are exact (repr), NaN is an empty cell, booleans are true/false."""
+    import csv
+    import io
+
+    import numpy as np
+
+    from apextrack.tables import to_csv_text
+
+    df = pd.DataFrame({
+        "name": ["plain", "a,b", 'say "hi"', "two\nlines", "cr\rcell", None],
+        "x": [0.1, 1e-300, float("nan"), float("inf"), -2.5, 1 / 3],
+        "x32": np.array([0.1, 2.0, np.nan, 3.5, -1.0, 0.0], np.float32),
+        "n": np.arange(6, dtype=np.int64) - 2,
+        "flag": [True, False, True, False, True, False],
+        "count": pd.array([1, None, 3, 4, 5, 6], dtype="Int64"),
+    })
+    rows = list(csv.reader(io.StringIO(to_csv_text(df), newline="")))
+    assert rows[0] == list(df.columns)
+    assert [r[0] for r in rows[1:]] == ["plain", "a,b", 'say "hi"', "two\nlines", "cr\rcell", ""]
+    assert [r[1] for r in rows[1:]] == [repr(0.1), repr(1e-300), "", "inf", "-2.5", repr(1 / 3)]
+    assert [r[2] for r in rows[1:]] == [repr(float(np.float32(0.1))), "2.0", "", "3.5", "-1.0", "0.0"]
+    assert [r[3] for r in rows[1:]] == ["-2", "-1", "0", "1", "2", "3"]
+    assert [r[4] for r in rows[1:]] == ["true", "false"] * 3
+    assert [r[5] for r in rows[1:]] == ["1", "", "3", "4", "5", "6"]
+    # a table without rows is its header alone
+    assert to_csv_text(df.iloc[0:0]) == ",".join(df.columns) + "\n"
