@@ -139,7 +139,7 @@ class _Checksums:
     def __init__(self, path, pool=None):
         self._path, self._pool, self._job = path, pool, None
         self._stop = threading.Event()
-        self._value: dict[str, str] = {}
+        self._value: dict[str, str] | None = None  # set once the checksums are in hand
         self._error: BaseException | None = None
         self._thread = None
         if pool is None:
@@ -166,14 +166,14 @@ class _Checksums:
 
     def result(self) -> dict[str, str]:
         """The checksums (waited for; asked again, the same)."""
-        if self._pool is not None:
-            if self._job is not False:  # False: the worker's answer is in hand
+        if self._value is None:
+            if self._pool is not None:
                 self.start()
-                self._value, self._job = self._job.result(), False
-            return self._value
-        self._thread.join()
-        if self._error is not None:
-            raise self._error
+                self._value = self._job.result()
+            else:
+                self._thread.join()
+                if self._error is not None:
+                    raise self._error
         return self._value
 
     def cancel(self) -> None:
@@ -409,6 +409,11 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                                 settings=s, parastichies=getattr(phyl, "parastichies", pd.DataFrame()))
         if "registration" in image_extra:
             result.extra_tables["registration"] = image_extra["registration"]
+        def finished_run():
+            # the checksum, still being computed while the figures are drawn, joins the record
+            run["input_sha256"] = checksums.result()
+            return run
+
         if staging is not None:
             t0 = time.perf_counter()
             write_results(result, staging.path)
@@ -417,24 +422,16 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                 # report.html + figures/, drawn from the tables and one top-view frame read from disk
                 from .report import write_report as _write_report
 
-                def finished_run():
-                    run["input_sha256"] = checksums.result()
-                    return run
-
                 t0 = time.perf_counter()
-                # the checksum, still being computed while the figures are drawn, joins the page
                 _write_report(result, staging.path, run_record=finished_run, pool=pool)
                 lap("report", t0)
-            run["input_sha256"] = checksums.result()
-            run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-            run["wall_time_s"] = round(time.time() - t_start, 3)
+        finished_run()
+        run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+        run["wall_time_s"] = round(time.time() - t_start, 3)
+        if staging is not None:
             write_json(run, staging.path / "run.json")
             staging.commit()
             result.out_dir = out
-        else:
-            run["input_sha256"] = checksums.result()
-            run["finished"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-            run["wall_time_s"] = round(time.time() - t_start, 3)
         return result
     except BaseException:
         checksums.cancel()
