@@ -718,25 +718,23 @@ def _covariance_diagonal(jac, idx: np.ndarray) -> np.ndarray:
     cols = np.arange(len(idx))
     rhs = np.zeros((jj.shape[0], len(idx)))
     rhs[idx, cols] = 1.0
+    d = None
     if jj.shape[0] <= _DENSE_COVARIANCE_MAX:
         from scipy.linalg import LinAlgError, cho_factor, cho_solve
 
-        dense = jj.toarray()
         try:
-            d = cho_solve(cho_factor(dense, check_finite=False), rhs, check_finite=False)[idx, cols]
-            if np.all(np.isfinite(d)) and np.all(d > 0):
-                return d
+            d = cho_solve(cho_factor(jj.toarray(), check_finite=False), rhs, check_finite=False)[idx, cols]
         except LinAlgError:  # not positive definite
             pass
-        return np.diag(np.linalg.pinv(dense))[idx]
-    from scipy.sparse.linalg import splu
+    else:
+        from scipy.sparse.linalg import splu
 
-    try:
-        d = splu(sparse.csc_matrix(jj)).solve(rhs)[idx, cols]
-        if np.all(np.isfinite(d)):
-            return d
-    except RuntimeError:  # exactly singular
-        pass
+        try:
+            d = splu(sparse.csc_matrix(jj)).solve(rhs)[idx, cols]
+        except RuntimeError:  # exactly singular
+            pass
+    if d is not None and np.all(np.isfinite(d)):
+        return d
     return np.diag(np.linalg.pinv(jj.toarray()))[idx]
 
 
