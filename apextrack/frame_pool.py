@@ -22,6 +22,7 @@ of its own; elsewhere frames are measured in threads (:func:`apextrack.imaging.m
 from __future__ import annotations
 
 import io
+import os
 import pickle
 import sys
 import threading
@@ -52,7 +53,6 @@ def _worker_main(conn, inherited, path: str, settings: Settings) -> None:
     """A worker: open the stack anew, then run the jobs that come down the pipe until told to
     stop (``None``), the pipe closes or the analysing process is gone. Ctrl-C is left to the
     analysing process."""
-    import os
     import signal
 
     from .pipeline import open_stack
@@ -132,7 +132,6 @@ class FramePool:
 
     def __init__(self, path: str | Path, settings: Settings, n: int):
         import multiprocessing as mp
-        import os
 
         fork = mp.get_context("fork")
         self.size = int(n)
@@ -198,8 +197,6 @@ class FramePool:
     def _dispatch(self) -> None:
         """Hand queued jobs to the least busy workers, up to :data:`_PER_WORKER` each (the
         caller holds the lock); the writing thread sends them."""
-        import os
-
         sent = False
         while self._queue and self._error is None:
             load = [len(b) for b in self._busy]
@@ -253,7 +250,6 @@ class FramePool:
     def _read(self) -> None:
         """The pool's thread: read results as they come, hand out queued jobs, watch for
         workers that die with jobs in hand."""
-        import os
         from multiprocessing.connection import wait
 
         while True:
@@ -311,8 +307,6 @@ class FramePool:
     def close(self) -> None:
         """Stop the workers: told to stop when they are idle, stopped at once when they still
         hold jobs (whose results nobody will read)."""
-        import os
-
         with self._cond:
             if self._closing:
                 return
