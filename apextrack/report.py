@@ -767,12 +767,15 @@ _FIGURE_FUNCS = {"topview": fig_topview, "divergence": fig_divergence, "polar": 
                  "growth": fig_growth, "emergence": fig_emergence, "parastichies": fig_parastichies}
 
 
+def _make_figure(data: ReportData, name: str, frame: int | None = None):
+    """Figure ``name`` of :data:`FIGURES` (the top view at ``frame``)."""
+    func = _FIGURE_FUNCS[name]
+    return func(data, frame) if name == "topview" else func(data)
+
+
 def make_figures(data: ReportData, frame: int | None = None) -> dict[str, Any]:
     """Every figure of :data:`FIGURES` as a matplotlib Figure (Agg canvas), by name."""
-    figs = {}
-    for name, func in _FIGURE_FUNCS.items():
-        figs[name] = func(data, frame) if name == "topview" else func(data)
-    return figs
+    return {name: _make_figure(data, name, frame) for name in _FIGURE_FUNCS}
 
 
 def figure_bytes(fig, fmt: str = "png", dpi: int = 100) -> bytes:
@@ -987,10 +990,8 @@ def render_html(data: ReportData, pngs: dict[str, bytes], title: str | None = No
 
 def _draw_figure(data: ReportData, name: str, frame: int | None, formats, dpi: int) -> dict[str, bytes]:
     """Figure ``name`` of :data:`FIGURES` drawn and rendered to ``{format: bytes}``."""
-    func = _FIGURE_FUNCS[name]
-    fig = func(data, frame) if name == "topview" else func(data)
     # the figure is dropped, not cleared: Figure.clear() resets every axes first, a cost for nothing
-    return render_figure(fig, formats, dpi)
+    return render_figure(_make_figure(data, name, frame), formats, dpi)
 
 
 def write_report(source, folder: str | Path | None = None, *, frame: int | None = None,
@@ -1129,9 +1130,7 @@ def draw_experiment_figure(experiment: pd.DataFrame, name: str, expected_angle_d
     drawn side by side (e.g. by the workers of a batch) and handed to
     :func:`write_experiment_report`."""
     fig = _EXPERIMENT_FIGURE_FUNCS[name](_analysed(experiment).reset_index(drop=True), expected_angle_deg)
-    files = render_figure(fig, [f.lower() for f in formats])
-    fig.clear()
-    return files
+    return render_figure(fig, [f.lower() for f in formats])  # dropped, not cleared (see _draw_figure)
 
 
 def write_experiment_report(experiment: pd.DataFrame, folder: str | Path, *, title: str = "apextrack experiment",
