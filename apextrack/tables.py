@@ -171,7 +171,7 @@ def to_csv_text(df: pd.DataFrame) -> str:
     # inside a text cell, rows are written with "\r\n" (so that the cell is quoted), then joined
     # with "\n"
     has_cr = any("\r" in v for col in columns for v in col) or any("\r" in str(c) for c in df.columns)
-    rows = [list(map(str, df.columns))] + [list(r) for r in zip(*columns)]
+    rows = [list(map(str, df.columns)), *zip(*columns)]
     if has_cr:
         lines = []
         for row in rows:
