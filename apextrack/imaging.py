@@ -142,34 +142,21 @@ def measure_frame(stack: Stack, t: int, s: Settings, ctx: StageContext) -> Frame
     and the dome fit. Safe to call from several threads at once."""
     from .apex import dome_is_plausible, fit_dome
     from .detect import apex_region, detect_blobs_3d
-    from .projection import max_and_surface, max_projection, shell_projection, surface_height
+    from .projection import max_projection, shell_projection, surface_height
 
     px = stack.pixel_size_um[0]
     dz = stack.pixel_size_um[2] if stack.has_z else math.nan
     ny, nx = stack.shape_yx
     sigmas = ctx.sigmas
+    # the volume stays in the stack's dtype: projections and the height map's binning
+    # read it as it is, nothing converts it whole to float
+    vol = stack.frame(t, s.channel, native=True)
+    mip = max_projection(vol)  # float32
+    is_blank = bool(vol.size) and float(mip.min()) == float(mip.max()) and float(vol.min()) == float(mip.max())
     every = max(1, int(s.dome_every_frames))
-    dome_due = stack.has_z and ctx.first is not None and (t - ctx.first) % every == 0
-    hm = vol = None
-    if dome_due and s.projection == "max" and not s.detect_3d and s.membrane_channel is None:
-        # all the volume is needed for: its maximum projection and height map, made slab by
-        # slab in one pass (the volume is never held whole)
-        nz = stack.shape[stack.axes.index("Z")]
-        mip, hm = max_and_surface(stack.frame_slabs(t, s.channel), (nz, ny, nx), dz, px, up=ctx.side)
-    else:
-        # the volume stays in the stack's dtype: projections and the height map's binning
-        # read it as it is, nothing converts it whole to float
-        vol = stack.frame(t, s.channel, native=True)
-        mip = max_projection(vol)  # float32
-    # a frame whose pixels all hold one value (its projection is flat, and so is the volume)
-    is_blank = bool(mip.size) and float(mip.min()) == float(mip.max())
-    if is_blank:
-        whole = vol if vol is not None else stack.frame(t, s.channel, native=True)
-        is_blank = float(whole.min()) == float(mip.max())
-        hm = None if is_blank else hm
-    fit_now = dome_due and not is_blank
-    if hm is None and (fit_now or (stack.has_z and not is_blank and s.projection == "surface")):
-        vol = vol if vol is not None else stack.frame(t, s.channel, native=True)
+    fit_now = (vol.ndim == 3 and not is_blank and ctx.first is not None and (t - ctx.first) % every == 0)
+    hm = None
+    if fit_now or (vol.ndim == 3 and not is_blank and s.projection == "surface"):
         surf = vol if s.membrane_channel is None else stack.frame(t, s.membrane_channel, native=True)
         hm = surface_height(surf, dz, px, up=ctx.side)
     if s.projection == "surface" and hm is not None:

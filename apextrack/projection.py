@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import functools
 from dataclasses import dataclass
-from typing import Iterable
 
 import numpy as np
 from scipy import ndimage as ndi
@@ -163,26 +162,17 @@ _PAD = _SMOOTH_RADIUS  # margin of the padded layout of the binned volume
 
 def _binned_smoothed(volume: np.ndarray, b: int, group: int = 4) -> np.ndarray:
     """The volume binned laterally (``b × b`` block means) and smoothed along y and x by a
-    Gaussian of σ = 1 cell (radius 4 cells, edges extended as 'nearest'), in float32, ``group``
-    slices at a time (:func:`_bin_and_smooth`)."""
-    nz = volume.shape[0]
-    return _bin_and_smooth(((z0, volume[z0:z0 + group]) for z0 in range(0, nz, group)), volume.shape, b)
-
-
-def _bin_and_smooth(slabs: Iterable[tuple[int, np.ndarray]], shape: tuple[int, int, int], b: int) -> np.ndarray:
-    """The volume of ``shape``, given as consecutive z-slabs ``(z0, array)``, binned laterally
-    (``b × b`` block means) and smoothed along y and x by a Gaussian of σ = 1 cell (radius 4
-    cells, edges extended as 'nearest'), in float32.
+    Gaussian of σ = 1 cell (radius 4 cells, edges extended as 'nearest'), in float32.
 
     Returned in a padded layout, shape ``(Z, Yb + 2·r, Xb + 2·r)`` with ``r`` =
     :data:`_PAD`, contiguous: the result is ``[:, r:-r, r:-r]``, the margins hold values of no
     meaning. The binned sums are written straight into the padded array, and the filter runs
     on it as one flat array (neighbours ``k`` apart along x, ``k`` padded rows apart along y),
     so that every pass is one contiguous sweep; the margins absorb what crosses the end of a
-    row or a slice. Each slab is binned and smoothed before the next is taken, so that it stays
-    in the cache between the passes (and a slab may be a buffer the next one overwrites).
+    row or a slice. ``group`` slices at a time are binned and smoothed, so that they stay in
+    the cache between the passes.
     """
-    nz, ny, nx = shape
+    nz, ny, nx = volume.shape
     yb, xb = ny // b, nx // b
     r = _PAD
     buf = np.empty((nz, yb + 2 * r, xb + 2 * r), np.float32)
@@ -190,23 +180,21 @@ def _bin_and_smooth(slabs: Iterable[tuple[int, np.ndarray]], shape: tuple[int, i
     row = buf.shape[2]
     size = buf.shape[1] * row
     src, dst = buf.reshape(-1), out.reshape(-1)
-    tmp = np.empty(0, np.float32)
+    tmp = np.empty(group * size, np.float32)
     mean = np.float32(1.0 / (b * b))
-    for z0, slab in slabs:
-        z1 = z0 + len(slab)
+    for z0 in range(0, nz, group):
+        z1 = min(z0 + group, nz)
         g = buf[z0:z1]
-        _bin_sums(slab, b, g[:, r:-r, r:-r])
+        _bin_sums(volume[z0:z1], b, g[:, r:-r, r:-r])
         g[:, r:-r, :r] = g[:, r:-r, r:r + 1]           # 'nearest': columns, then whole rows
         g[:, r:-r, -r:] = g[:, r:-r, -r - 1:-r]
         g[:, :r] = g[:, r:r + 1]
         g[:, -r:] = g[:, -r - 1:-r]
-        # the rows r … r + yb − 1 of the slab's slices (all that the cells need), along y into
+        # the rows r … r + yb − 1 of the group's slices (all that the cells need), along y into
         # out (block sums → means folded into the weights), then along x back into buf: along
-        # y only the slab's own rows are read, along x what lies beyond a row's end reaches
+        # y only the group's own rows are read, along x what lies beyond a row's end reaches
         # only margins
         i0, i1 = z0 * size + r * row, z1 * size - r * row
-        if tmp.size < i1 - i0:
-            tmp = np.empty(i1 - i0, np.float32)
         for step, a, c, w in ((row, src, dst, _SMOOTH_WEIGHTS * mean), (1, dst, src, _SMOOTH_WEIGHTS)):
             o = c[i0:i1]
             t = tmp[:i1 - i0]
@@ -325,58 +313,12 @@ def surface_height(volume: np.ndarray, z_step_um: float, pixel_size_um: float,
     vol = np.asarray(volume)
     if vol.ndim != 3:
         raise ValueError(f"expected a (Z, Y, X) volume, got shape {vol.shape}")
-    b = _cell_px(vol.shape, cell_um, pixel_size_um)
-    return _surface_of_binned(_binned_smoothed(vol, b), vol.shape, b, z_step_um, up, rel_level)
-
-
-def max_and_surface(slabs: Iterable[tuple[int, np.ndarray]], shape: tuple[int, int, int], z_step_um: float,
-                    pixel_size_um: float, cell_um: float = 3.0, up: str | int = "auto",
-                    rel_level: float = 0.5) -> tuple[np.ndarray, HeightMap]:
-    """:func:`max_projection` and :func:`surface_height` of a volume given as consecutive
-    z-slabs ``(z0, array)`` (e.g. :meth:`apextrack.stack.Stack.frame_slabs`), in one pass over
-    the data: each slab is projected and binned while it is in the cache, and the volume is
-    never held whole. The results equal those of the two functions on the whole volume.
-
-    Examples
-    --------
-    >>> zz = np.arange(10)[:, None, None] * 2.0
-    >>> v = np.exp(-0.5 * ((zz - 11.0) / 1.5) ** 2) * np.ones((10, 16, 16))
-    >>> mip, hm = max_and_surface(((z, v[z:z + 4]) for z in range(0, 10, 4)), v.shape, 2.0, 1.0, cell_um=4)
-    >>> round(float(mip.max()), 3), round(float(np.nanmean(hm.z_um)), 2)
-    (0.801, 11.0)
-    """
-    if len(shape) != 3:
-        raise ValueError(f"expected a (Z, Y, X) volume, got shape {tuple(shape)}")
-    b = _cell_px(shape, cell_um, pixel_size_um)
-    top = None
-
-    def projected(slabs):
-        nonlocal top
-        for z0, slab in slabs:
-            m = slab.max(axis=0)
-            top = m if top is None else np.maximum(top, m, out=top)
-            yield z0, slab
-
-    binned = _bin_and_smooth(projected(slabs), tuple(shape), b)
-    if top is None:
-        raise ValueError("the volume has no slices")
-    return top.astype(np.float32, copy=False), _surface_of_binned(binned, tuple(shape), b, z_step_um, up, rel_level)
-
-
-def _cell_px(shape: tuple[int, ...], cell_um: float, pixel_size_um: float) -> int:
-    """The side of a coarse cell of the height map in pixels (at most a quarter of the frame)."""
-    ny, nx = shape[-2:]
+    nz, ny, nx = vol.shape
     b = max(1, int(round(cell_um / pixel_size_um)))
-    return min(b, max(1, min(ny, nx) // 4))
-
-
-def _surface_of_binned(v: np.ndarray, shape: tuple[int, int, int], b: int, z_step_um: float,
-                       up: str | int, rel_level: float) -> HeightMap:
-    """:func:`surface_height` from the binned and smoothed volume (:func:`_bin_and_smooth`, in
-    its padded layout) of a volume of ``shape``."""
-    nz, ny, nx = shape
-    # the binned volume is in a padded layout: the cells are [:, m:-m, m:-m]; every step below
+    b = min(b, max(1, min(ny, nx) // 4))
+    # binned and smoothed, in a padded layout: the cells are [:, m:-m, m:-m]; every step below
     # works on the whole padded array (contiguous sweeps) and the margins are cut off at the end
+    v = _binned_smoothed(vol, b)
     m = _PAD
     cells = (slice(m, -m), slice(m, -m))
     if up in ("auto", None):

@@ -17,7 +17,7 @@ import threading
 import warnings as _warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -177,58 +177,6 @@ class Stack:
             raise InputError(f"frame {t} holds NaN or infinite values", self.path,
                              "replace them (e.g. by 0) before the analysis")
         return out
-
-    def frame_slabs(self, t: int, channel: int | str | None = None, slab: int = 4) -> Iterator[tuple[int, np.ndarray]]:
-        """Timepoint ``t`` of one channel as consecutive z-slabs ``(z0, array)`` of at most
-        ``slab`` slices, in the order of z, with the values :meth:`frame` gives with
-        ``native=True``.
-
-        From a memory-mapped file of integer data the slabs are read from the file one after the
-        other into one buffer, so that the whole volume is never held and each slab can be
-        worked on while it is in the processor's cache: an array is valid only until the next
-        one is yielded. Other stacks (and frames without z) are read whole and cut into views.
-        """
-        mapped = (isinstance(self.data, np.memmap) and self._timepoint is None and self.has_z
-                  and self.data.dtype.kind in "uib")
-        if not mapped:
-            vol = self.frame(t, channel, native=True)
-            if vol.ndim == 2:
-                yield 0, vol
-                return
-            for z0 in range(0, vol.shape[0], max(1, slab)):
-                yield z0, vol[z0:z0 + max(1, slab)]
-            return
-        if not 0 <= t < self.n_frames:
-            raise IndexError(f"frame {t} out of range 0..{self.n_frames - 1}")
-        index: list[Any] = [slice(None)] * len(self.axes)
-        index[self.axes.index("T")] = t
-        if "C" in self.axes:
-            index[self.axes.index("C")] = self.channel_index(channel)
-        elif channel not in (None, 0, "0") and not (isinstance(channel, str) and channel.lower() in
-                                                     [n.lower() for n in self.channel_names]):
-            self.channel_index(channel)  # raises a clear error
-        view = self.data[tuple(index)]  # (Z, Y, X), still on disk
-        nz, slab = view.shape[0], max(1, slab)
-        buf = np.empty((min(slab, nz),) + view.shape[1:], view.dtype)
-        native = view.dtype.newbyteorder("=")
-        with _MappedFile(self.data) as f:
-            for z0 in range(0, nz, slab):
-                part = view[z0:z0 + slab]
-                out = buf[:len(part)]
-                try:
-                    # one read for a slab contiguous in the file, else one per slice
-                    ok = f.read_into(part, out) or all(f.read_into(part[i], out[i]) for i in range(len(part)))
-                    if not ok:
-                        out[...] = part  # copied out of the map, whose pages then go
-                        _drop_mapped_pages(self.data, part)
-                except (InputError, MemoryError):
-                    raise
-                except Exception as exc:  # reading past the end of a truncated file
-                    raise InputError(f"cannot read frame {t} ({type(exc).__name__}: {_first_line(exc)})", self.path,
-                                     "the file may be truncated or corrupt: copy it again") from None
-                if not out.dtype.isnative:  # a big-endian file: the values in this machine's order
-                    out = out.byteswap(inplace=True).view(native)
-                yield z0, out
 
     def close(self) -> None:
         """Release the file handles (the data can no longer be read afterwards)."""
@@ -545,62 +493,37 @@ def _read_tiff(path: Path, time_axis: str | None) -> Stack:
     return stack
 
 
-class _MappedFile:
-    """Positional reads of views into a read-only memory map from its file, through one
-    descriptor (so that a frame read slab by slab opens the file once). Reading from the file
-    costs about half of copying out of the map, whose pages must be faulted in and released
-    again. Used as a context manager; :meth:`read_into` says when it cannot read (then the
-    caller copies out of the map)."""
-
-    def __init__(self, mm: np.memmap):
-        import mmap
-
-        self.fd = None
-        m, name = getattr(mm, "_mmap", None), getattr(mm, "filename", None)
-        if m is None or name is None or mm.mode != "r" or not hasattr(os, "preadv"):
-            return
-        try:
-            # the map starts at the file offset rounded down to the allocation granularity
-            self._base = np.frombuffer(m, np.uint8).__array_interface__["data"][0]
-            self._start = mm.offset - mm.offset % mmap.ALLOCATIONGRANULARITY
-            self.fd = os.open(name, os.O_RDONLY)
-        except (OSError, ValueError, TypeError):
-            self.fd = None
-
-    def read_into(self, part: np.ndarray, out: np.ndarray) -> bool:
-        """Fill ``out`` (a C-contiguous array of the shape and type of ``part``) with the values
-        of ``part``, a C-contiguous view into the map; False when that cannot be done."""
-        if self.fd is None or not part.flags.c_contiguous or not out.flags.c_contiguous:
-            return False
-        try:
-            buf = memoryview(out).cast("B")
-            start = self._start + (part.__array_interface__["data"][0] - self._base)
-            done = 0
-            while done < len(buf):
-                n = os.preadv(self.fd, [buf[done:]], start + done)
-                if n <= 0:
-                    return False
-                done += n
-            return True
-        except (OSError, ValueError, TypeError):
-            return False
-
-    def __enter__(self) -> "_MappedFile":
-        return self
-
-    def __exit__(self, *exc) -> None:
-        if self.fd is not None:
-            os.close(self.fd)
-            self.fd = None
-
-
 def _read_mapped(mm: np.memmap, part: np.ndarray) -> np.ndarray | None:
     """The values of ``part``, a C-contiguous view into the read-only memory map ``mm``, read
-    from the file by positional reads into a new array (:class:`_MappedFile`); None where that
-    cannot be done (then the caller copies out of the map)."""
-    with _MappedFile(mm) as f:
+    from the file by positional reads into a new array; None where that cannot be done (then
+    the caller copies out of the map). Reading a frame from the file costs about half of
+    copying it out of the map, whose pages must be faulted in and released again."""
+    import mmap
+
+    m, name = getattr(mm, "_mmap", None), getattr(mm, "filename", None)
+    if m is None or name is None or mm.mode != "r" or not hasattr(os, "preadv") or not part.flags.c_contiguous:
+        return None
+    try:
         out = np.empty(part.shape, part.dtype)
-        return out if f.read_into(part, out) else None
+        if out.nbytes == 0:
+            return out
+        # the map starts at the file offset rounded down to the allocation granularity
+        base = np.frombuffer(m, np.uint8).__array_interface__["data"][0]
+        start = mm.offset - mm.offset % mmap.ALLOCATIONGRANULARITY + (part.__array_interface__["data"][0] - base)
+        buf = memoryview(out).cast("B")
+        fd = os.open(name, os.O_RDONLY)
+        try:
+            done = 0
+            while done < len(buf):
+                n = os.preadv(fd, [buf[done:]], start + done)
+                if n <= 0:
+                    return None
+                done += n
+        finally:
+            os.close(fd)
+        return out
+    except (OSError, ValueError, TypeError):
+        return None
 
 
 def _drop_mapped_pages(mm: np.memmap, part: np.ndarray | None = None) -> None:

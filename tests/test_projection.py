@@ -142,28 +142,3 @@ def test_height_map_of_a_dome_facing_down_is_the_mirror_of_the_upright_one_for_l
     assert 24 * 80 * 80 > 65536 and up.up == 1 and down.up == -1
     np.testing.assert_array_equal(np.isfinite(up.z_um), np.isfinite(down.z_um))
     assert np.nanmax(np.abs(up.z_um + down.z_um - 23.0)) < 1e-4
-
-
-@pytest.mark.parametrize("slab", [1, 3, 4, 7, 16])
-def test_projection_and_height_map_in_one_pass_equal_the_two_on_the_whole_volume(slab):
-    # common practice, no source: the volume given slab by slab (as a mapped stack is read,
-    # each slab overwriting the last in one buffer) gives exactly the maximum projection and
-    # the height map of the whole volume
-    from apextrack.projection import max_and_surface
-
-    s = make_synthetic_stack(n_frames=1, shape_zyx=(16, 64, 64), z_step_um=1.5, seed=5)
-    raw = np.asarray(s.data[0])
-    buf = np.empty((slab,) + raw.shape[1:], raw.dtype)
-
-    def slabs():
-        for z0 in range(0, raw.shape[0], slab):
-            part = buf[:len(raw[z0:z0 + slab])]
-            part[...] = raw[z0:z0 + slab]
-            yield z0, part
-
-    mip, hm = max_and_surface(slabs(), raw.shape, 1.5, 0.8)
-    ref = surface_height(raw, 1.5, 0.8)
-    np.testing.assert_array_equal(mip, max_projection(raw))
-    assert mip.dtype == np.float32
-    np.testing.assert_array_equal(hm.z_um, ref.z_um)
-    assert (hm.bin_px, hm.up, hm.shape_yx) == (ref.bin_px, ref.up, ref.shape_yx)

@@ -192,33 +192,3 @@ def test_frames_read_from_a_mapped_file_equal_the_reference_reader(tmp_path, byt
     whole = _read_mapped(st.data, st.data[1])
     assert whole is not None and whole.dtype == st.data.dtype
     np.testing.assert_array_equal(whole, np.asarray(st.data[1]))
-    # slab by slab, one buffer reused: every slab as read is the reference's (the slices of one
-    # channel are not contiguous in this file: read one by one)
-    for t in range(3):
-        for c in range(2):
-            for slab in (1, 3, 4):
-                got = [(z0, part.copy()) for z0, part in st.frame_slabs(t, c, slab=slab)]
-                assert [z0 for z0, _ in got] == list(range(0, 4, slab))
-                assert all(part.dtype.isnative for _, part in got)
-                np.testing.assert_array_equal(np.concatenate([p for _, p in got]), ref[t, :, c])
-
-
-@pytest.mark.parametrize("byteorder", ["<", ">"])
-def test_slabs_of_a_single_channel_stack_equal_the_reference_reader(tmp_path, byteorder):
-    """A one-channel stack's slabs are contiguous in the file (one positional read each); a
-    stack held in memory is cut into views. Both give tifffile's values."""
-    rng = np.random.default_rng(8)
-    data = rng.integers(0, 65535, size=(2, 5, 12, 10), dtype=np.uint16)  # T Z Y X
-    path = tmp_path / "plain.tif"
-    tifffile.imwrite(path, data, imagej=True, byteorder=byteorder, metadata={"axes": "TZYX"})
-    ref = tifffile.imread(path)
-    known = dict(pixel_size_um=0.5, z_step_um=1.0, interval_h=2.0)
-    mapped, held = read_stack(path, **known), read_stack(ref, axes="TZYX", **known)
-    assert isinstance(mapped.data, np.memmap)
-    for st in (mapped, held):
-        for t in range(2):
-            got = [(z0, part.copy()) for z0, part in st.frame_slabs(t, slab=2)]
-            assert [z0 for z0, _ in got] == [0, 2, 4]
-            np.testing.assert_array_equal(np.concatenate([p for _, p in got]), ref[t])
-    with pytest.raises(InputError, match="channel"):
-        next(mapped.frame_slabs(0, channel=3))
