@@ -16,6 +16,7 @@ processes are spawned: a script that calls :func:`run_batch` must guard its entr
 from __future__ import annotations
 
 import glob as _glob
+import logging
 import os
 import re
 import sys
@@ -338,10 +339,31 @@ def warm_worker() -> None:
     warm_up()
 
 
+class _HeartbeatAtClose(logging.Filter):
+    """Leaves out a worker's report that its heartbeat could not reach the scheduler.
+
+    In a local cluster of this program the scheduler lives in this program and goes away only
+    when the cluster is closed. A heartbeat in flight at that moment fails, and the worker
+    printed the failure with a traceback at the end of a batch that went well. This is a known
+    race of dask.distributed."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not record.getMessage().startswith("Failed to communicate with scheduler during heartbeat")
+
+
+def _start_local_worker() -> None:
+    """Run in every worker of the local cluster :func:`make_client` starts: its closing stays
+    quiet (:class:`_HeartbeatAtClose`) and it is warmed (:func:`warm_worker`)."""
+    worker_log = logging.getLogger("distributed.worker")
+    if not any(isinstance(f, _HeartbeatAtClose) for f in worker_log.filters):
+        worker_log.addFilter(_HeartbeatAtClose())
+    warm_worker()
+
+
 def make_client(scheduler: str | None = None, n_workers: int | None = None, *, dashboard_address: str = ":0"):
     """A dask client: connected to ``scheduler`` when given, else to a new ``LocalCluster`` of
     ``n_workers`` processes (default: one per core), one thread each. Its workers are started
-    warm (:func:`warm_worker`, all at once).
+    warm (:func:`warm_worker`, all at once) and close without noise (:class:`_HeartbeatAtClose`).
 
     Returns ``(client, cluster)``; ``cluster`` is ``None`` for an existing scheduler. Close both.
     """
@@ -370,7 +392,7 @@ def make_client(scheduler: str | None = None, n_workers: int | None = None, *, d
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=dashboard_address)
     client = Client(cluster)
     try:
-        client.run(warm_worker)
+        client.run(_start_local_worker)
     except Exception:  # noqa: BLE001 - only a head start: a worker that cannot load these fails its tasks plainly
         pass
     return client, cluster
