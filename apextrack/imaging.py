@@ -72,7 +72,7 @@ class TopViewWriter:
         if view.shape != self.shape_yx:
             raise ValueError(f"top view of frame {t} has shape {view.shape}, expected {self.shape_yx}")
         self._file.seek(self.offset + t * self.frame_bytes)
-        self._file.write(np.ascontiguousarray(view, dtype=self.dtype).tobytes())
+        self._file.write(memoryview(np.ascontiguousarray(view, dtype=self.dtype)).cast("B"))
 
     def close(self) -> None:
         if not self._file.closed:

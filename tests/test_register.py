@@ -132,14 +132,15 @@ def test_sudden_jump_falls_back_to_phase_correlation(monkeypatch):
 
 @pytest.mark.parametrize("angle_deg, shift", [(7.0, (12.3, -5.7)), (-31.0, (-40.2, 17.9)), (90.0, (0.0, 0.0)),
                                               (0.0, (3.0, 2.0))])
-def test_warp_view_matches_scipy_affine_transform(angle_deg, shift):
+@pytest.mark.parametrize("shape", [(61, 64), (203, 150)])  # one block of rows; several, the last short
+def test_warp_view_matches_scipy_affine_transform(angle_deg, shift, shape):
     # reference: scipy.ndimage.affine_transform, bilinear (order=1), constant outside the frame
     from scipy import ndimage as ndi
 
     from apextrack.register import warp_view
 
     rng = np.random.default_rng(4)
-    view = ndi.gaussian_filter(rng.random((61, 64)), 2).astype(np.float32)
+    view = ndi.gaussian_filter(rng.random(shape), 2).astype(np.float32)
     a = np.radians(angle_deg)
     m = np.array([[np.cos(a), np.sin(a), shift[0]], [-np.sin(a), np.cos(a), shift[1]], [0.0, 0.0, 1.0]])
     ours = warp_view(view, m)
