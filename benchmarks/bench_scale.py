@@ -15,7 +15,8 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
    rounds (the median speed-up counts), beside what two processes at once get from this machine
    at all (the same plain work alone and two at a time).
 
-Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
+The reads and the analyses are repeated in rounds that take every T in turn (the fastest counts),
+so that the machine's drift from minute to minute does not bias the fit against T. Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
 measures frames in worker processes, the largest worker's peak is recorded too. Results are printed
 and written to ``benchmarks/results_scale.json``; ``RESULTS.md`` is written by hand from them.
 """
@@ -338,19 +339,30 @@ def main() -> None:
                "load_avg_at_start": os.getloadavg()}
     print(json.dumps(machine), flush=True)
     rows = []
+    # every measurement is repeated in rounds that go through all T in turn, so that the
+    # machine's drift from minute to minute is spread over all T instead of biasing the fit of
+    # wall time against T. The first read may come from disk (a freshly written file); later
+    # ones read from the page cache. The floor is the fastest of two lean reads (tifffile's
+    # memory map, the file's own integer type); apextrack's own reader is timed too, in its own
+    # type and converting to float32 (the floor of the earlier runs), for comparison
+    reads_of = {n: {how: [] for how in ("tifffile", "native", "float32")} for n in args.frames}
+    for _ in range(2):
+        for n in args.frames:
+            for how in reads_of[n]:
+                reads_of[n][how].append(_run_child("--child-read", str(stack_path(n)), how))
+    # the machine's noise is large: the fastest of five analyses per T (each in a fresh process)
+    runs_of = {n: [] for n in args.frames}
+    with tempfile.TemporaryDirectory(prefix="bench_") as tmp:
+        for k in range(5):
+            for n in args.frames:
+                runs_of[n].append(_run_child("--child-analyse", str(stack_path(n)), str(Path(tmp) / "res")))
+            print(f"analyses, round {k + 1} of 5: " + ", ".join(f"T={n} {runs_of[n][-1]['wall_s']:.2f} s"
+                                                              for n in args.frames), flush=True)
     for n in args.frames:
         p = stack_path(n)
-        with tempfile.TemporaryDirectory(prefix="bench_") as tmp:
-            # the first read may come from disk (a freshly written file); later runs read from the
-            # page cache. The floor is the fastest of two lean reads (tifffile's memory map, the
-            # file's own integer type); apextrack's own reader is timed too, in its own type and
-            # converting to float32 (the floor of the earlier runs), for comparison
-            reads = {how: min((_run_child("--child-read", str(p), how) for _ in range(2)),
-                              key=lambda r: r["wall_s"]) for how in ("tifffile", "native", "float32")}
-            rp = reads["tifffile"]
-            # the machine's noise is large: the fastest of five analyses (each in a fresh process)
-            an = min((_run_child("--child-analyse", str(p), str(Path(tmp) / "res")) for _ in range(5)),
-                     key=lambda r: r["wall_s"])
+        reads = {how: min(r, key=lambda x: x["wall_s"]) for how, r in reads_of[n].items()}
+        rp = reads["tifffile"]
+        an = min(runs_of[n], key=lambda r: r["wall_s"])
         row = {"T": n, "stack_gb": p.stat().st_size / 1e9, "read_project_s": rp["wall_s"], "analyse_s": an["wall_s"],
                "ratio": an["wall_s"] / rp["wall_s"],
                "read_project_native_s": reads["native"]["wall_s"], "read_project_float32_s": reads["float32"]["wall_s"],
@@ -359,7 +371,8 @@ def main() -> None:
                # an upper bound of the memory in use: the analysis plus every worker at its peak
                "total_peak_rss_mb": (an["peak_rss_bytes"] + an["n_worker_processes"] * an["worker_peak_rss_bytes"]) / 1e6,
                "read_peak_rss_mb": rp["peak_rss_bytes"] / 1e6, "timings_s": an["timings_s"],
-               "n_primordia": an["n_primordia"], "n_detections": an["n_detections"]}
+               "n_primordia": an["n_primordia"], "n_detections": an["n_detections"],
+               "analyse_runs_s": [r["wall_s"] for r in runs_of[n]]}
         rows.append(row)
         print(f"T={n:3d}  read+project {row['read_project_s']:6.2f} s (apextrack's reader {row['read_project_native_s']:.2f} s, "
               f"as float32 {row['read_project_float32_s']:.2f} s)  analyse {row['analyse_s']:6.2f} s  "
