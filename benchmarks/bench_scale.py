@@ -10,7 +10,8 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
    the read being the leanest there is: ``tifffile.memmap`` and numpy's max in the file's own type;
 2. apextrack's detection ÷ the naive ``skimage.feature.blob_log`` over the same scales (target: ≥ 20×
    faster), with the accuracy of both against the ground truth;
-3. peak RSS against T (target: flat within 10 %) and wall time against T (target: linear, R² > 0.99);
+3. peak RSS against T (target: flat within 10 %) and wall time against T (target: linear, R² > 0.99),
+   fitted through the fastest and through the median of the five runs per T;
 4. a batch of N stacks with 1 and with 2 dask workers (target: ≥ 1.7× speed-up), in five interleaved
    rounds (the median speed-up counts), beside what two processes at once get from this machine
    at all (the same plain work alone and two at a time).
@@ -341,13 +342,15 @@ def main() -> None:
     rows = []
     # every measurement is repeated in rounds that go through all T in turn, so that the
     # machine's drift from minute to minute is spread over all T instead of biasing the fit of
-    # wall time against T. The first read may come from disk (a freshly written file); later
-    # ones read from the page cache. The floor is the fastest of two lean reads (tifffile's
-    # memory map, the file's own integer type); apextrack's own reader is timed too, in its own
-    # type and converting to float32 (the floor of the earlier runs), for comparison
+    # wall time against T. Each stack is read through once before it is timed: this machine
+    # evicts pages left unused for a while, and the other stacks were read in between. The
+    # floor is the fastest of two lean reads (tifffile's memory map, the file's own integer
+    # type); apextrack's own reader is timed too, in its own type and converting to float32
+    # (the floor of the earlier runs), for comparison
     reads_of = {n: {how: [] for how in ("tifffile", "native", "float32")} for n in args.frames}
     for _ in range(2):
         for n in args.frames:
+            _read_through(stack_path(n))
             for how in reads_of[n]:
                 reads_of[n][how].append(_run_child("--child-read", str(stack_path(n)), how))
     # the machine's noise is large: the fastest of five analyses per T (each in a fresh process)
@@ -355,6 +358,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory(prefix="bench_") as tmp:
         for k in range(5):
             for n in args.frames:
+                _read_through(stack_path(n))
                 runs_of[n].append(_run_child("--child-analyse", str(stack_path(n)), str(Path(tmp) / "res")))
             print(f"analyses, round {k + 1} of 5: " + ", ".join(f"T={n} {runs_of[n][-1]['wall_s']:.2f} s"
                                                               for n in args.frames), flush=True)
@@ -393,6 +397,11 @@ def main() -> None:
     core = Ts <= 80
     slope, icpt, r2 = linear_fit(Ts[core], walls[core])
     slope_all, icpt_all, r2_all = linear_fit(Ts, walls) if (~core).any() else (slope, icpt, r2)
+    # the same fits through the median of the five runs per T: the fastest run of a T is an
+    # extreme of the machine's drift, the median its typical time
+    med = np.array([float(np.median(r["analyse_runs_s"])) for r in rows])
+    slope_m, icpt_m, r2_m = linear_fit(Ts[core], med[core])
+    r2_m_all = linear_fit(Ts, med)[2] if (~core).any() else r2_m
     det = detection_benchmark(stack_path(10))
     print(f"detection on {det['frames']} top views: apextrack {det['apextrack_s']:.2f} s (F1 {det['apextrack']['f1']:.3f}; "
           f"{det['apextrack_strict']['f1']:.3f} counting detections of primordia just out of the volume as false), "
@@ -415,6 +424,8 @@ def main() -> None:
         "3_peak_rss_max_over_min_all_T": float(rss.max() / rss.min()),
         "3_wall_linear_r2": r2, "3_wall_s_per_frame": slope, "3_wall_intercept_s": icpt,
         "3_wall_linear_r2_all_T": r2_all, "3_wall_s_per_frame_all_T": slope_all, "3_wall_intercept_s_all_T": icpt_all,
+        "3_wall_linear_r2_median_of_runs": r2_m, "3_wall_s_per_frame_median_of_runs": slope_m,
+        "3_wall_intercept_s_median_of_runs": icpt_m, "3_wall_linear_r2_median_of_runs_all_T": r2_m_all,
         # the median of the rounds' speed-ups (each round runs 1 then 2 workers)
         "4_batch_speedup_2_over_1_worker": float(np.median(batch["speedup_per_round"])) if batch else None,
         "4_batch_speedup_per_round": batch.get("speedup_per_round"),
