@@ -343,9 +343,9 @@ class _HeartbeatAtClose(logging.Filter):
     """Leaves out a worker's report that its heartbeat could not reach the scheduler.
 
     In a local cluster of this program the scheduler lives in this program and goes away only
-    when the cluster is closed. A heartbeat in flight at that moment fails, and the worker
-    printed the failure with a traceback at the end of a batch that went well. This is a known
-    race of dask.distributed."""
+    when the cluster is closed. A heartbeat in flight at that moment fails, and the worker would
+    print the failure, with a traceback, at the end of a batch that went well (a known race of
+    dask.distributed)."""
 
     def filter(self, record: logging.LogRecord) -> bool:
         return not record.getMessage().startswith("Failed to communicate with scheduler during heartbeat")
