@@ -16,8 +16,9 @@ Generates (once, into ``benchmarks/data/``, git-ignored) synthetic stacks of T t
    rounds (the median speed-up counts), beside what two processes at once get from this machine
    at all (the same plain work alone and two at a time).
 
-The reads and the analyses are repeated in rounds that take every T in turn (the fastest counts),
-so that the machine's drift from minute to minute does not bias the fit against T. Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
+The reads and the analyses are repeated in rounds that take every T in turn, so that the machine's
+drift from minute to minute does not bias the fit against T; the ratios take the fastest run of
+each. Each ``analyse`` runs in a fresh process so that its peak RSS (VmHWM) is its own; when it
 measures frames in worker processes, the largest worker's peak is recorded too. Results are printed
 and written to ``benchmarks/results_scale.json``; ``RESULTS.md`` is written by hand from them.
 """
