@@ -252,10 +252,17 @@ class _ProfiledSolver:
             sse += self.smooth ** 2 * float(np.sum(d2.real ** 2 + d2.imag ** 2))
         return res, sse
 
+    def _fit(self, gamma: float, omega: float):
+        """``e = exp(λτ)``, the normal equations' solver for it and the least-squares
+        coefficients ``c``, ``a`` at ``λ = gamma + i·omega``."""
+        e = np.exp((gamma + 1j * omega) * self.tau)
+        solve = self._normal_solver(e)
+        c, a = solve(self.rf, self._sum_by(self.tid, np.conj(e) * self.z, self.n))
+        return e, solve, c, a
+
     def __call__(self, gamma: float, omega: float) -> tuple[np.ndarray, float]:
         """Coefficients ``[c_0 … c_{F−1}, a_0 … a_{n−1}]`` and the residual sum of squares."""
-        e = np.exp((gamma + 1j * omega) * self.tau)
-        c, a = self._normal_solver(e)(self.rf, self._sum_by(self.tid, np.conj(e) * self.z, self.n))
+        e, _, c, a = self._fit(gamma, omega)
         return np.concatenate([c, a]), self._residuals(e, c, a)[1]
 
     def derivatives(self, gamma: float, omega: float) -> tuple[float, np.ndarray, np.ndarray]:
@@ -269,9 +276,7 @@ class _ProfiledSolver:
         factorisation already made: it costs little more than one call.
         """
         tau, tid, fidx, n = self.tau, self.tid, self.fidx, self.n
-        e = np.exp((gamma + 1j * omega) * tau)
-        solve = self._normal_solver(e)
-        c, a = solve(self.rf, self._sum_by(tid, np.conj(e) * self.z, n))
+        e, solve, c, a = self._fit(gamma, omega)
         r, sse = self._residuals(e, c, a)
         ea = e * a[tid]
         dm = tau * ea                          # ∂ model / ∂γ at fixed c, a (∂/∂ω: i·dm)
