@@ -409,6 +409,7 @@ def analyse(source=None, out: str | Path | None = None, settings: Settings | dic
                                 settings=s, parastichies=getattr(phyl, "parastichies", pd.DataFrame()))
         if "registration" in image_extra:
             result.extra_tables["registration"] = image_extra["registration"]
+
         def finished_run():
             # the checksum, still being computed while the figures are drawn, joins the record
             run["input_sha256"] = checksums.result()
